@@ -1,0 +1,427 @@
+"""The `trawl` command: thin commands over the library. Errors are one line, never a traceback."""
+
+from __future__ import annotations
+
+import functools
+import json
+import os
+import sys
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+from rich.console import Console
+from rich.table import Table
+
+from . import TrawlError
+
+app = typer.Typer(
+    help="Find where typed words are spoken in an archive of broadcasts, in any language.\n\n"
+         "First index a folder of recordings once (trawl index), then search it for words as they are "
+         "spelled (trawl search). Hits are candidates: listen before you rely on one.",
+    pretty_exceptions_enable=False, no_args_is_help=True, add_completion=False)
+rules_app = typer.Typer(help="Spelling rules stored in an index, applied to every search.", no_args_is_help=True)
+app.add_typer(rules_app, name="rules")
+out = Console()
+err = Console(stderr=True)
+
+
+def friendly(fn):
+    """Run a command; turn errors into one line on stderr and a non-zero exit."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except TrawlError as e:
+            err.print(f"[bold red]error:[/] {e}", highlight=False, soft_wrap=True)
+            raise typer.Exit(1)
+        except KeyboardInterrupt:
+            err.print("interrupted: finished broadcasts are kept; run the same command again to resume")
+            raise typer.Exit(130)
+        except (typer.Exit, typer.Abort):
+            raise
+        except Exception as e:  # never a traceback for the user (set TRAWL_DEBUG=1 to see one)
+            if os.environ.get("TRAWL_DEBUG"):
+                raise
+            err.print(f"[bold red]error:[/] unexpected {type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''}",
+                      highlight=False, soft_wrap=True)
+            raise typer.Exit(2)
+
+    return wrapper
+
+
+IndexOpt = typer.Option(..., "--index", "-i", help="The index folder (made by `trawl index`).")
+ModelsOpt = typer.Option(None, "--models", help="Folder with the model files and card (default: the bundled models).",
+                         envvar="TRAWL_MODELS")
+
+
+# ----------------------------------------------------------------- index
+@app.command("index")
+@friendly
+def index_cmd(
+    archive: Path = typer.Argument(..., help="Folder of broadcasts; searched recursively for WAV, FLAC, MP3 and Ogg/Opus."),
+    index: Path = typer.Option(..., "--index", "-i", help="Index folder to create or add to."),
+    models: Optional[str] = ModelsOpt,
+):
+    """Index a folder of broadcasts so its words can be searched.
+
+    Files already indexed with the same content are skipped; changed files are indexed again.
+    If a run is interrupted, the broadcasts that finished are kept: run the same command again
+    to carry on. Silence and music without speech are not indexed.
+    """
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+    from .indexing import index_archive
+
+    state = {"audio": 0.0}
+    with Progress(TextColumn("[bold]{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total} files"),
+                  TextColumn("{task.fields[hours]:.2f} h audio"), TextColumn("{task.fields[speed]}"),
+                  TimeElapsedColumn(), console=err, transient=False) as prog:
+        task = prog.add_task("indexing", total=None, hours=0.0, speed="")
+
+        def progress(event, **info):
+            if event == "start":
+                prog.update(task, total=info["files"])
+                state["t0"] = __import__("time").time()
+            elif event == "file":
+                state["audio"] += info["seconds"]
+                el = max(1e-6, __import__("time").time() - state["t0"])
+                speed = f"{state['audio'] / el:.0f}x real time" if state["audio"] else ""
+                prog.update(task, advance=1, hours=state["audio"] / 3600, speed=speed,
+                            description=f"{info['status']}: {info['path'][-40:]}")
+                if info["status"] == "failed":
+                    prog.console.print(f"[yellow]skipped[/] {info.get('error', info['path'])}", highlight=False, soft_wrap=True)
+
+        rep = index_archive(archive, index, models, progress=progress)
+    t = Table(title=f"Index {index}", show_header=False)
+    t.add_row("broadcasts indexed now", str(len(rep.indexed)))
+    t.add_row("unchanged (skipped)", str(len(rep.unchanged)))
+    t.add_row("failed (skipped)", str(len(rep.failed)))
+    t.add_row("audio indexed", f"{rep.audio_seconds / 3600:.2f} h")
+    if rep.audio_seconds:
+        t.add_row("not indexed (silence, music)", f"{rep.skipped_seconds / 60:.1f} min ({100 * rep.skipped_seconds / rep.audio_seconds:.0f}%)")
+        t.add_row("speed", f"{rep.audio_seconds / max(rep.wall_seconds, 1e-6):.0f}x real time")
+    t.add_row("windows stored", str(rep.windows))
+    out.print(t)
+
+
+# ----------------------------------------------------------------- search
+def _read_terms(terms: List[str], terms_file: Optional[Path]) -> List[str]:
+    allterms = list(terms or [])
+    if terms_file:
+        try:
+            text = terms_file.read_text(encoding="utf-8-sig")
+        except FileNotFoundError:
+            raise TrawlError(f"terms file {terms_file} not found") from None
+        except UnicodeDecodeError:
+            raise TrawlError(f"terms file {terms_file} is not UTF-8 text") from None
+        allterms += [ln.strip() for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
+    if not allterms:
+        raise TrawlError("give at least one term to search for (as arguments or with --terms FILE)")
+    return allterms
+
+
+def _parse_span(text: str, what: str) -> tuple[str, float, float]:
+    """'PATH@START-END' -> (path, start, end)."""
+    if "@" not in text or "-" not in text.rsplit("@", 1)[1]:
+        raise TrawlError(f"{what} must look like PATH@START-END (seconds), e.g. news/monday.opus@61.2-61.9")
+    path, span = text.rsplit("@", 1)
+    a, b = span.split("-", 1)
+    try:
+        return path, float(a), float(b)
+    except ValueError:
+        raise TrawlError(f"{what}: {span!r} is not START-END in seconds") from None
+
+
+def hits_table(hits, calibrated: bool, title: str) -> Table:
+    from .export import format_hms
+
+    t = Table(title=title)
+    for col in ["term", "rank", "broadcast", "start", "end", "score", "confidence"] + (["accepted"] if calibrated else []):
+        t.add_column(col, justify="right" if col in ("rank", "score", "confidence") else "left",
+                     overflow="fold", no_wrap=col in ("start", "end", "rank", "score"),
+                     min_width=12 if col in ("start", "end") else None)
+    for h in hits:
+        row = [h.term, str(h.rank), h.broadcast, format_hms(h.start), format_hms(h.end), f"{h.score:.2f}", f"{h.confidence:.2f}"]
+        if calibrated:
+            row.append("yes" if h.accepted else "no")
+        t.add_row(*row)
+    return t
+
+
+@app.command("search")
+@friendly
+def search_cmd(
+    terms: List[str] = typer.Argument(None, help="Words to find, as spelled; quote a phrase."),
+    index: Path = IndexOpt,
+    terms_file: Optional[Path] = typer.Option(None, "--terms", help="A UTF-8 text file with one term per line."),
+    top: int = typer.Option(10, "--top", "-n", help="Most hits to list for each term."),
+    csv_path: Optional[Path] = typer.Option(None, "--csv", help="Also write the hits to this CSV file."),
+    as_json: bool = typer.Option(False, "--json", help="Print the hits as JSON (for programs) instead of a table."),
+    show_all: bool = typer.Option(False, "--all", help="With a calibration: list every hit, not only those above the threshold."),
+    rules: Optional[Path] = typer.Option(None, "--rules", help="A spelling-rules file to apply to the terms (instead of the index's)."),
+    no_adapt: bool = typer.Option(False, "--no-adapt", help="Ignore the adaptation learned with `trawl adapt`."),
+    ignore_marks: bool = typer.Option(False, "--ignore-marks", help="Drop accents and tone marks from the terms before searching."),
+    like: List[str] = typer.Option(None, "--like", help="Also use this indexed stretch as an example: PATH@START-END (seconds). Repeatable."),
+    example: List[Path] = typer.Option(None, "--example", help="Also use this recording (a WAV file holding just the word) as an example. Repeatable."),
+    clips: Optional[Path] = typer.Option(None, "--clips", help="Write each hit as a short WAV (with 0.5 s around it) into this folder."),
+    archive: Optional[Path] = typer.Option(None, "--archive", help="The archive folder, for --clips (default: the one recorded in the index)."),
+    models: Optional[str] = ModelsOpt,
+):
+    """Search an index for typed words; list the hits, best first.
+
+    Each hit has a start and end time in its broadcast, a score (higher is better), and a
+    confidence. The confidence is a probability only after `trawl calibrate`; until then it is
+    an uncalibrated map of the score. Examples (--like, --example) are averaged with the spelling;
+    with examples and no term, the search is by example alone (give a name with one term).
+    """
+    import numpy as np
+
+    from .export import hits_to_json, write_csv
+    from .rules import load_rules
+    from .search import Searcher
+    from .spelling import strip_marks
+
+    if top < 1:
+        raise TrawlError("--top must be at least 1")
+    examples_given = bool(like or example)
+    all_terms = _read_terms(terms, terms_file) if (terms or terms_file or not examples_given) else ["example"]
+    rs = load_rules(rules) if rules else None
+    s = Searcher(index, models, rules=rs, adapt=not no_adapt)
+    ex_vecs = []
+    for item in like or []:
+        ex_vecs.append(s.window_vector(*_parse_span(item, "--like")))
+    for wav in example or []:
+        from . import api, audio
+
+        x = audio.load(wav)
+        ex_vecs.append(api.embed_spans(x, 16000, [(0.0, len(x) / 16000)], models)[0])
+    calibrated = s.calibration is not None
+    hits, below = [], 0
+    for t in all_terms:
+        term = strip_marks(t) if ignore_marks else t
+        if examples_given and not (terms or terms_file):
+            v = np.mean([e / np.linalg.norm(e) for e in ex_vecs], axis=0)
+            found = s.search_vector(term, v, top=None if calibrated and not show_all else top, letters=0)
+        else:
+            found = s.search(term, top=None if calibrated and not show_all else top, examples=ex_vecs)
+        if calibrated and not show_all:
+            kept = [h for h in found if h.accepted]
+            below += len(found) - len(kept)
+            found = kept[:top]
+        hits += found
+    if csv_path:
+        write_csv(hits, csv_path, calibrated=calibrated)
+    if clips:
+        from .clips import write_clips
+
+        write_clips(hits, clips, archive or s.index.manifest.get("archive"))
+    if as_json:
+        sys.stdout.write(hits_to_json(hits, calibrated=calibrated) + "\n")
+        return
+    title = "Hits (confidence calibrated)" if calibrated else "Hits (confidence uncalibrated: run trawl calibrate)"
+    out.print(hits_table(hits, calibrated, title))
+    if calibrated and not show_all:
+        out.print(f"{below} more candidate hits fell below the calibrated threshold "
+                  f"({s.calibration.threshold:.2f}); --all lists them.")
+    if csv_path:
+        out.print(f"wrote {len(hits)} hits to {csv_path}")
+    out.print("[dim]Hits are candidates: listen to each before anyone is quoted or a record is changed.[/]")
+
+
+# ----------------------------------------------------------------- calibrate
+@app.command("calibrate")
+@friendly
+def calibrate_cmd(
+    index: Path = IndexOpt,
+    checked: Optional[Path] = typer.Option(None, "--checked", help="A checked sample: a hits CSV whose verdict column you filled with yes/no."),
+    target_precision: float = typer.Option(0.9, "--target-precision", help="Share of accepted hits that should be correct (0-1)."),
+    diagram: Optional[Path] = typer.Option(None, "--diagram", help="Where to write the reliability diagram (SVG); default beside the sample."),
+    suggest_n: Optional[int] = typer.Option(None, "--suggest", help="Instead of calibrating: propose this many hits to check."),
+    terms_file: Optional[Path] = typer.Option(None, "--terms", help="With --suggest: the terms to draw hits for (one per line)."),
+    out_file: Optional[Path] = typer.Option(None, "--out", help="With --suggest: write the sample to this CSV (default: print it)."),
+    models: Optional[str] = ModelsOpt,
+):
+    """Make confidences mean what they say, from hits you checked by ear.
+
+    Listen to a sample of hits, mark each yes or no in the verdict column of the CSV, and
+    run this. From then on `trawl search` shows calibrated confidences and, by default, only
+    hits at or above the threshold chosen for the target precision.
+    """
+    from .export import write_csv
+    from .workflows import calibrate, suggest
+
+    if suggest_n is not None:
+        hits = suggest(index, _read_terms([], terms_file), suggest_n, models_dir=models)
+        for h in hits:
+            h.accepted = None
+        if out_file:
+            write_csv(hits, out_file, calibrated=False)
+            out.print(f"wrote {len(hits)} hits to check to {out_file}: fill the verdict column with yes or no")
+        else:
+            write_csv(hits, sys.stdout, calibrated=False)
+        return
+    if checked is None:
+        raise TrawlError("give the checked sample with --checked FILE (or --suggest N to make one)")
+    cal, svg = calibrate(index, checked, target_precision, diagram, models)
+    r = cal.report
+    t = Table(title=f"Calibration ({cal.method}), stored in {index}")
+    t.add_column("measure")
+    t.add_column("value", justify="right")
+    t.add_column("95% interval", justify="right")
+
+    def iv(key):
+        v = r.get(key)
+        return f"{v[0]:.2f}-{v[1]:.2f}" if isinstance(v, (list, tuple)) and len(v) == 2 else ""
+
+    t.add_row("checked hits (correct)", f"{r.get('n', '')} ({r.get('n_correct', '')})", "")
+    t.add_row("threshold (confidence)", f"{cal.threshold:.3f}", "")
+    t.add_row(f"precision at threshold (target {cal.target_precision:.2f})", f"{r.get('precision', float('nan')):.3f}", iv("precision_interval"))
+    t.add_row("recall at threshold (of checked correct hits)", f"{r.get('recall', float('nan')):.3f}", iv("recall_interval"))
+    t.add_row("expected calibration error", f"{r.get('ece', float('nan')):.3f}", "")
+    t.add_row("Brier score", f"{r.get('brier', float('nan')):.3f}", "")
+    out.print(t)
+    out.print("Quality figures are from held-out folds of terms (each term's hits predicted by a map fitted without them).")
+    for w in r.get("warnings", []):
+        out.print(f"[yellow]warning:[/] {w}", highlight=False)
+    out.print(f"reliability diagram: {svg}")
+
+
+# ----------------------------------------------------------------- adapt
+@app.command("adapt")
+@friendly
+def adapt_cmd(
+    index: Path = IndexOpt,
+    checked: Path = typer.Option(..., "--checked", help="A checked sample (hits CSV with the verdict column filled)."),
+    models: Optional[str] = ModelsOpt,
+):
+    """Teach the query side your language's spelling habits from checked hits.
+
+    Learns a small map applied to every typed term; the archive is not re-indexed and its
+    vectors never change. The map is switched on only if it helps on terms held out from
+    fitting; `trawl search --no-adapt` ignores it.
+    """
+    from .workflows import adapt
+
+    rep = adapt(index, checked, models)
+    t = Table(title="Adaptation (held-out terms, cross-validated)", show_header=False)
+    t.add_row("mean average precision before", f"{rep.get('before_map', float('nan')):.3f}")
+    t.add_row("mean average precision after", f"{rep.get('after_map', float('nan')):.3f}")
+    t.add_row("switched on", "yes" if rep.get("enabled") else "no")
+    if rep.get("reason"):
+        t.add_row("why", str(rep["reason"]))
+    out.print(t)
+    if rep.get("recalibrated"):
+        out.print("the calibration was refitted for the adapted queries")
+
+
+# ----------------------------------------------------------------- rules
+@rules_app.command("set")
+@friendly
+def rules_set(file: Path = typer.Argument(..., help="Rules file (see the README for its syntax)."), index: Path = IndexOpt):
+    """Store a spelling-rules file in the index; every search then applies it."""
+    from .index_store import Index
+    from .rules import load_rules
+
+    rs = load_rules(file)
+    Index.open(index).write_text("rules.txt", file.read_text(encoding="utf-8-sig"))
+    out.print(f"stored {len(rs)} rules in {index}")
+
+
+@rules_app.command("show")
+@friendly
+def rules_show(index: Path = IndexOpt, term: Optional[str] = typer.Option(None, "--try", help="Show how the rules rewrite this term.")):
+    """Show the rules stored in the index (and try them on a term)."""
+    from .index_store import Index
+    from .rules import parse_rules
+
+    text = Index.open(index).read_text("rules.txt")
+    if not text:
+        out.print("no rules stored in this index")
+        return
+    rs = parse_rules(text, "rules stored in the index")
+    out.print(rs.to_text())
+    if term:
+        out.print(f"{term} -> {rs.apply(term)}")
+
+
+@rules_app.command("clear")
+@friendly
+def rules_clear(index: Path = IndexOpt):
+    """Remove the stored rules."""
+    from .index_store import Index
+
+    Index.open(index).write_text("rules.txt", None)
+    out.print("rules removed")
+
+
+# ----------------------------------------------------------------- evaluate
+@app.command("evaluate")
+@friendly
+def evaluate_cmd(
+    index: Path = IndexOpt,
+    reference: Path = typer.Option(..., "--reference", help="Word timings of transcribed broadcasts: columns broadcast, start, end, word."),
+    terms_file: Path = typer.Option(..., "--terms", help="Terms to evaluate, one per line."),
+    as_json: bool = typer.Option(False, "--json", help="Print the results as JSON."),
+    models: Optional[str] = ModelsOpt,
+):
+    """Measure search quality on broadcasts you have transcribed (MTWV, ATWV, P@10, recall)."""
+    from .evaluate_run import evaluate
+
+    res = evaluate(index, reference, _read_terms([], terms_file), models)
+    if as_json:
+        sys.stdout.write(json.dumps(res, indent=1, ensure_ascii=False) + "\n")
+        return
+    out.print(evaluation_table(res))
+
+
+def evaluation_table(res: dict) -> Table:
+    t = Table(title=f"Evaluation over {res['searched_hours']:.2f} h (TWV with beta 999.9, 0.5 s tolerance)")
+    for c in ["term", "occurrences", "ATWV", "P@10", "recall@100"]:
+        t.add_column(c, justify="left" if c == "term" else "right")
+    for term, r in res["per_term"].items():
+        t.add_row(term, str(r["occurrences"]), f"{r['twv']:.3f}" if r["twv"] is not None else "-", f"{r['p_at_10']:.2f}", f"{r['recall_at_100']:.2f}")
+    t.add_row("[bold]all terms[/]", str(res["occurrences"]), f"{res['atwv']:.3f}", f"{res['p_at_10']:.2f}", f"{res['recall_at_100']:.2f}")
+    t.caption = (f"MTWV {res['mtwv']:.3f} (at score {res['mtwv_threshold']:.2f}); ATWV at the applied threshold "
+                 f"{res['atwv']:.3f}")
+    return t
+
+
+# ----------------------------------------------------------------- demo / status
+@app.command("demo")
+@friendly
+def demo_cmd(
+    index: Optional[Path] = typer.Option(None, "--index", "-i", help="Index folder for the demo (default: a temporary one)."),
+    csv_path: Path = typer.Option(Path("hits.csv"), "--csv", help="Where to write the demo's hits."),
+):
+    """Index the bundled demo broadcasts, search example terms, and score the result."""
+    from .demo import run_demo
+
+    run_demo(index, csv_path, out, err)
+
+
+@app.command("status")
+@friendly
+def status_cmd(index: Path = IndexOpt):
+    """What an index holds: broadcasts, hours, model, calibration, rules, adaptation."""
+    from .index_store import Index
+
+    idx = Index.open(index)
+    b = idx.broadcasts()
+    t = Table(title=f"Index {index}", show_header=False)
+    t.add_row("broadcasts", str(len(b)))
+    t.add_row("audio", f"{sum(r['duration'] for r in b) / 3600:.2f} h")
+    t.add_row("windows", str(sum(r["n_windows"] for r in b)))
+    t.add_row("model card", idx.manifest["model_card_sha256"][:16])
+    t.add_row("calibration", "yes" if idx.read_setting("calibration.json") else "no")
+    t.add_row("spelling rules", "yes" if idx.read_text("rules.txt") else "no")
+    qm = idx.read_setting("query_map.json")
+    t.add_row("adaptation", ("on" if qm.get("report", {}).get("enabled") else "off (did not help)") if qm else "no")
+    fails = idx.db.execute("select path, error from failures").fetchall()
+    t.add_row("failed files", str(len(fails)))
+    out.print(t)
+
+
+def main():  # pragma: no cover
+    app()

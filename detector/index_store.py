@@ -1,0 +1,315 @@
+"""The index folder: an HNSW graph of window vectors plus a catalogue of broadcasts.
+
+Layout of INDEX_DIR:
+    trawl-index.json   what made the index: format version, model card hash, features, windows
+    catalog.sqlite     broadcasts (path, content hash, duration, ...) and their windows
+    pending/ID.npy     vectors of finished broadcasts not yet merged into the graph
+    graph.hnsw         hnswlib graph of all merged vectors (replaced atomically)
+    calibration.json, rules.txt, query_map.json   query-side settings (optional)
+
+Every write is atomic (temporary file, then os.replace) and every broadcast is committed
+in one sqlite transaction after its vectors are on disk, so a run killed at any moment
+leaves a usable index of the broadcasts that finished; the next run merges what is pending
+and carries on.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sqlite3
+import tempfile
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+from . import TrawlError
+
+FORMAT_VERSION = 1
+MANIFEST = "trawl-index.json"
+HNSW_M = 8
+HNSW_EF_CONSTRUCTION = 120
+
+SCHEMA = """
+create table if not exists broadcasts (
+  id integer primary key,
+  path text unique not null,
+  sha256 text not null,
+  duration real not null,
+  speech_seconds real not null,
+  first_label integer not null,
+  n_windows integer not null,
+  starts blob not null,
+  kinds blob not null,
+  indexed_at text not null,
+  in_graph integer not null default 0
+);
+create table if not exists failures (path text primary key, error text, at text);
+create table if not exists meta (key text primary key, value text);
+"""
+
+
+def atomic_write(path: Path, data: bytes) -> None:
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+class Index:
+    def __init__(self, root: Path, manifest: dict):
+        self.root = Path(root)
+        self.manifest = manifest
+        self.dim = int(manifest["dim"])
+        self.windows = [tuple(w) for w in manifest["windows"]]
+        self.db = sqlite3.connect(str(self.root / "catalog.sqlite"), isolation_level=None)
+        self.db.executescript(SCHEMA)
+        self._graph = None
+
+    # --------------------------------------------------------------- opening
+    @classmethod
+    def create_or_open(cls, root: Path, models) -> "Index":
+        root = Path(root)
+        man_path = root / MANIFEST
+        if man_path.exists():
+            idx = cls.open(root)
+            idx.check_models(models)
+            return idx
+        if root.exists() and any(p for p in root.iterdir() if not p.name.startswith(".")):
+            raise TrawlError(f"{root} exists and is not a Trawl index: choose an empty or new folder")
+        root.mkdir(parents=True, exist_ok=True)
+        (root / "pending").mkdir(exist_ok=True)
+        manifest = {
+            "format_version": FORMAT_VERSION,
+            "model_card_sha256": models.card_hash,
+            "model_name": models.card.get("name"),
+            "features": models.card["features"],
+            "frame_seconds": models.card["frame_seconds"],
+            "windows": [list(w) for w in models.windows],
+            "dim": models.dim,
+            "hnsw": {"space": "ip", "M": HNSW_M, "ef_construction": HNSW_EF_CONSTRUCTION},
+            "created": now(),
+        }
+        idx = cls(root, manifest)
+        atomic_write(man_path, json.dumps(manifest, indent=1).encode())
+        return idx
+
+    @classmethod
+    def open(cls, root: Path) -> "Index":
+        root = Path(root)
+        man_path = root / MANIFEST
+        if not man_path.exists():
+            raise TrawlError(f"no Trawl index at {root} (run `trawl index ARCHIVE_DIR --index {root}` first)")
+        try:
+            manifest = json.loads(man_path.read_text(encoding="utf-8"))
+        except (OSError, json.JSONDecodeError) as e:
+            raise TrawlError(f"the index description {man_path} is unreadable ({e})") from None
+        if manifest.get("format_version") != FORMAT_VERSION:
+            raise TrawlError(f"the index at {root} has format version {manifest.get('format_version')}, "
+                             f"this program reads version {FORMAT_VERSION}")
+        (root / "pending").mkdir(exist_ok=True)
+        return cls(root, manifest)
+
+    def check_models(self, models) -> None:
+        if self.manifest["model_card_sha256"] != models.card_hash:
+            raise TrawlError(f"the index at {self.root} was made with another model "
+                             f"(card {self.manifest['model_card_sha256'][:12]}, installed {models.card_hash[:12]}); "
+                             "search it with that model or index into a new folder")
+
+    def set_archive(self, archive: Path) -> None:
+        """Remember where the archive was (for listening clips); paths inside stay relative."""
+        self.manifest["archive"] = str(Path(archive).resolve())
+        atomic_write(self.root / MANIFEST, json.dumps(self.manifest, indent=1).encode())
+
+    # --------------------------------------------------------------- catalogue
+    def known(self, rel_path: str) -> tuple[int, str] | None:
+        row = self.db.execute("select id, sha256 from broadcasts where path=?", (rel_path,)).fetchone()
+        return (row[0], row[1]) if row else None
+
+    def next_label(self) -> int:
+        """Labels are never reused, even those of a broadcast re-indexed after its content changed."""
+        row = self.db.execute("select max(first_label + n_windows) from broadcasts").fetchone()
+        kept = self.db.execute("select value from meta where key='next_label'").fetchone()
+        return max(row[0] or 0, int(kept[0]) if kept else 0)
+
+    def add_broadcast(self, rel_path: str, sha256: str, duration: float, speech_seconds: float,
+                      starts: np.ndarray, kinds: np.ndarray, vectors: np.ndarray) -> None:
+        """Commit one finished broadcast: vectors to pending/, then one catalogue transaction."""
+        old = self.known(rel_path)
+        label = self.next_label()
+        tmp_name = f"{sha256[:16]}-{label}.npy"
+        import io
+
+        buf = io.BytesIO()
+        np.save(buf, vectors.astype(np.float32))
+        atomic_write(self.root / "pending" / tmp_name, buf.getvalue())
+        cur = self.db.cursor()
+        cur.execute("begin immediate")
+        try:
+            if old is not None:  # changed content: the old windows are dropped
+                cur.execute("delete from broadcasts where id=?", (old[0],))
+            cur.execute("insert or replace into meta(key, value) values('next_label', ?)", (str(label + len(vectors)),))
+            cur.execute(
+                "insert into broadcasts(path, sha256, duration, speech_seconds, first_label, n_windows, starts, kinds,"
+                " indexed_at, in_graph) values (?,?,?,?,?,?,?,?,?,0)",
+                (rel_path, sha256, duration, speech_seconds, label, len(vectors), starts.astype(np.int32).tobytes(),
+                 kinds.astype(np.uint8).tobytes(), now()))
+            cur.execute("delete from failures where path=?", (rel_path,))
+            cur.execute("commit")
+        except BaseException:
+            cur.execute("rollback")
+            raise
+
+    def record_failure(self, rel_path: str, error: str) -> None:
+        self.db.execute("insert or replace into failures(path, error, at) values (?,?,?)", (rel_path, error, now()))
+
+    def broadcasts(self) -> list[dict]:
+        cols = ["id", "path", "sha256", "duration", "speech_seconds", "first_label", "n_windows", "indexed_at", "in_graph"]
+        rows = self.db.execute(f"select {', '.join(cols)} from broadcasts order by first_label").fetchall()
+        return [dict(zip(cols, r)) for r in rows]
+
+    def total_seconds(self) -> float:
+        return float(self.db.execute("select coalesce(sum(duration), 0) from broadcasts").fetchone()[0])
+
+    # --------------------------------------------------------------- graph
+    def _pending_files(self) -> dict[int, Path]:
+        """first_label -> pending vector file, for committed broadcasts not yet in the graph."""
+        out = {}
+        for f in (self.root / "pending").glob("*.npy"):
+            try:
+                out[int(f.stem.rsplit("-", 1)[1])] = f
+            except (IndexError, ValueError):
+                continue
+        return out
+
+    def _new_graph(self, capacity: int):
+        import hnswlib
+
+        g = hnswlib.Index(space="ip", dim=self.dim)
+        h = self.manifest["hnsw"]
+        g.init_index(max_elements=max(capacity, 1000), M=h["M"], ef_construction=h["ef_construction"], random_seed=7)
+        return g
+
+    def load_graph(self, merge_pending: bool = True):
+        """The HNSW graph with every committed broadcast in it (pending ones added in memory)."""
+        import hnswlib
+
+        if self._graph is not None:
+            return self._graph
+        total = self.next_label()
+        path = self.root / "graph.hnsw"
+        if path.exists():
+            g = hnswlib.Index(space="ip", dim=self.dim)
+            g.load_index(str(path), max_elements=max(total, 1000))
+        else:
+            g = self._new_graph(total)
+        if merge_pending:
+            self._add_pending(g)
+        self._graph = g
+        return g
+
+    def _add_pending(self, g) -> list[int]:
+        pend = self._pending_files()
+        added = []
+        for row in self.db.execute("select first_label, n_windows from broadcasts where in_graph=0").fetchall():
+            f = pend.get(row[0])
+            if f is None or row[1] == 0:
+                added.append(row[0])
+                continue
+            vec = np.load(f)
+            need = g.get_current_count() + len(vec)
+            if need > g.get_max_elements():
+                g.resize_index(max(need, int(g.get_max_elements() * 1.5)))
+            g.add_items(vec, np.arange(row[0], row[0] + len(vec)), num_threads=2)
+            added.append(row[0])
+        return added
+
+    def merge(self) -> int:
+        """Merge pending vectors into graph.hnsw (atomically) and clear them. Returns windows merged."""
+        g = self.load_graph(merge_pending=False)
+        before = g.get_current_count()
+        added = self._add_pending(g)
+        if not added:
+            return 0
+        fd, tmp = tempfile.mkstemp(dir=self.root, prefix=".graph.", suffix=".tmp")
+        os.close(fd)
+        try:
+            g.save_index(tmp)
+            os.replace(tmp, self.root / "graph.hnsw")
+        finally:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+        self.db.execute("update broadcasts set in_graph=1 where in_graph=0")
+        live = {r[0] for r in self.db.execute("select first_label from broadcasts where in_graph=0")}
+        for label, f in self._pending_files().items():
+            if label not in live:
+                f.unlink(missing_ok=True)
+        return g.get_current_count() - before
+
+    def clean_orphans(self) -> None:
+        """Remove pending files of broadcasts whose commit never happened (a killed run)."""
+        live = {r[0] for r in self.db.execute("select first_label from broadcasts where in_graph=0")}
+        for label, f in self._pending_files().items():
+            if label not in live:
+                f.unlink(missing_ok=True)
+        for f in self.root.glob(".*.tmp"):
+            f.unlink(missing_ok=True)
+        for f in (self.root / "pending").glob(".*.tmp"):
+            f.unlink(missing_ok=True)
+
+    # --------------------------------------------------------------- lookups
+    def window_table(self):
+        """Arrays for label -> (broadcast, start, end): sorted first labels and per-broadcast spans."""
+        rows = self.db.execute("select path, first_label, n_windows, starts, kinds from broadcasts order by first_label").fetchall()
+        firsts = np.array([r[1] for r in rows], np.int64)
+        counts = np.array([r[2] for r in rows], np.int64)
+        spans = [(np.frombuffer(r[3], np.int32), np.frombuffer(r[4], np.uint8)) for r in rows]
+        return [r[0] for r in rows], firsts, counts, spans
+
+    def vectors(self, labels: np.ndarray) -> np.ndarray:
+        g = self.load_graph()
+        return np.asarray(g.get_items(np.asarray(labels, np.int64)), dtype=np.float32).reshape(-1, self.dim)
+
+    # --------------------------------------------------------------- settings files
+    def read_setting(self, name: str) -> dict | None:
+        p = self.root / name
+        if not p.exists():
+            return None
+        try:
+            return json.loads(p.read_text(encoding="utf-8"))
+        except json.JSONDecodeError as e:
+            raise TrawlError(f"{p} is damaged ({e})") from None
+
+    def read_text(self, name: str) -> str | None:
+        p = self.root / name
+        return p.read_text(encoding="utf-8") if p.exists() else None
+
+    def write_text(self, name: str, text: str | None) -> None:
+        p = self.root / name
+        if text is None:
+            p.unlink(missing_ok=True)
+        else:
+            atomic_write(p, text.encode("utf-8"))
+
+    def write_setting(self, name: str, obj: dict | None) -> None:
+        p = self.root / name
+        if obj is None:
+            p.unlink(missing_ok=True)
+        else:
+            atomic_write(p, (json.dumps(obj, indent=1, ensure_ascii=False) + "\n").encode())
+
+    def close(self):
+        self.db.close()

@@ -1,0 +1,178 @@
+"""Search: a typed term (or examples) -> query vector -> HNSW neighbours -> hits.
+
+Scores are made comparable across terms by normalising each query's cosine similarities
+against that query's similarities to a fixed random sample of the archive's windows
+(a per-term z-score): short, common-sounding words score high everywhere, and this
+removes that offset before any threshold is applied.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import TrawlError
+from .hits import Hit
+from .index_store import Index
+from .models import load
+from .spelling import check_term, letter_count
+from .windows import window_times
+
+BACKGROUND_SAMPLE = 4000
+UNCALIBRATED_CENTRE, UNCALIBRATED_SCALE = 5.0, 1.0
+
+
+def uncalibrated_confidence(score: np.ndarray) -> np.ndarray:
+    """A monotone map of score to [0, 1]. Not calibrated: it is no probability until `trawl calibrate`."""
+    return 1.0 / (1.0 + np.exp(-(np.asarray(score, np.float64) - UNCALIBRATED_CENTRE) / UNCALIBRATED_SCALE))
+
+
+def nms(starts: np.ndarray, ends: np.ndarray, groups: np.ndarray, scores: np.ndarray) -> np.ndarray:
+    """Non-maximum suppression in time: indices of the windows kept, best first.
+
+    Windows are taken in order of decreasing score; a window is dropped when it overlaps a
+    kept window of the same group (broadcast) at all.
+    """
+    order = np.argsort(-scores, kind="stable")
+    kept: list[int] = []
+    taken: dict[int, list[tuple[float, float]]] = {}
+    for i in order:
+        g = int(groups[i])
+        s, e = float(starts[i]), float(ends[i])
+        if any(s < ke and ks < e for ks, ke in taken.get(g, ())):
+            continue
+        kept.append(int(i))
+        taken.setdefault(g, []).append((s, e))
+    return np.array(kept, dtype=np.int64)
+
+
+@dataclass
+class Query:
+    term: str  # what the user typed, NFC
+    spelled: str  # after spelling rules
+    vector: np.ndarray
+
+
+class Searcher:
+    def __init__(self, index_dir: Path | str, models_dir: str | None = None, rules=None, adapt: bool = True,
+                 use_stored_rules: bool = True):
+        from .adaptation import QueryMap
+        from .calibration import Calibration
+        from .rules import parse_rules
+
+        self.index = Index.open(Path(index_dir))
+        self.models = load(models_dir)
+        self.index.check_models(self.models)
+        self.graph = self.index.load_graph()
+        self.names, self.firsts, self.counts, self.spans = self.index.window_table()
+        if self.graph.get_current_count() == 0 or not len(self.firsts):
+            raise TrawlError(f"the index at {self.index.root} holds no windows yet")
+        self.total_seconds = self.index.total_seconds()
+        rules_text = self.index.read_text("rules.txt") if use_stored_rules and rules is None else None
+        self.rules = rules if rules is not None else (parse_rules(rules_text, "rules stored in the index") if rules_text else None)
+        cal = self.index.read_setting("calibration.json")
+        self.calibration = Calibration.from_dict(cal) if cal else None
+        qm = self.index.read_setting("query_map.json") if adapt else None
+        self.query_map = QueryMap.from_dict(qm) if qm else None
+        rng = np.random.default_rng(0)
+        live = np.concatenate([np.arange(f, f + c) for f, c in zip(self.firsts, self.counts)])
+        pick = live if len(live) <= BACKGROUND_SAMPLE else rng.choice(live, BACKGROUND_SAMPLE, replace=False)
+        self.background = self.index.vectors(np.sort(pick))
+
+    # ------------------------------------------------------------ queries
+    def spelling_vector(self, term: str, use_map: bool = True) -> tuple[str, str, np.ndarray]:
+        from .api import embed_spellings
+
+        t = check_term(term)
+        spelled = self.rules.apply(t) if self.rules else t
+        v = embed_spellings([spelled])[0]
+        if use_map and self.query_map is not None and self.query_map.enabled:
+            v = self.query_map.apply(v[None])[0]
+        return t, spelled, v
+
+    def window_vector(self, broadcast: str, start: float, end: float) -> np.ndarray:
+        """The stored vector of the window that best covers (start, end) in a broadcast."""
+        try:
+            bi = self.names.index(broadcast)
+        except ValueError:
+            raise TrawlError(f"{broadcast} is not in the index") from None
+        s, e = window_times(*self.spans[bi], self.index.windows)
+        inter = np.maximum(0, np.minimum(e, end) - np.maximum(s, start))
+        iou = inter / (np.maximum(e, end) - np.minimum(s, start))
+        if not len(iou) or iou.max() <= 0:
+            raise TrawlError(f"no indexed speech overlaps {broadcast} {start:.2f}-{end:.2f} s")
+        return self.index.vectors([self.firsts[bi] + int(np.argmax(iou))])[0]
+
+    # ------------------------------------------------------------ search
+    def locate(self, labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Broadcast position and window position of each label; -1 for labels no longer live."""
+        bi = np.searchsorted(self.firsts, labels, side="right") - 1
+        ok = bi >= 0
+        wi = np.where(ok, labels - self.firsts[np.maximum(bi, 0)], -1)
+        ok &= wi < self.counts[np.maximum(bi, 0)]
+        return np.where(ok, bi, -1), np.where(ok, wi, -1)
+
+    def search_vector(self, term: str, vector: np.ndarray, top: int | None = 10, letters: int | None = None,
+                      candidates: int | None = None) -> list[Hit]:
+        v = (vector / np.linalg.norm(vector)).astype(np.float32)
+        n = self.graph.get_current_count()
+        k = min(n, candidates or max(300, 40 * (top or 25)))
+        self.graph.set_ef(max(k + 50, 400))
+        labels, dist = self.graph.knn_query(v[None], k=k, num_threads=1)
+        labels, raw = labels[0].astype(np.int64), 1.0 - dist[0]
+        bi, wi = self.locate(labels)
+        keep = bi >= 0
+        labels, raw, bi, wi = labels[keep], raw[keep], bi[keep], wi[keep]
+        bg = self.background @ v
+        mu, sd = float(bg.mean()), float(bg.std() + 1e-6)
+        score = (raw - mu) / sd
+        starts = np.empty(len(labels))
+        ends = np.empty(len(labels))
+        for j, (b, w) in enumerate(zip(bi, wi)):
+            st, kd = self.spans[b]
+            s, e = window_times(st[w : w + 1], kd[w : w + 1], self.index.windows)
+            starts[j], ends[j] = s[0], e[0]
+        order = nms(starts, ends, bi, score)
+        if top:
+            order = order[:top]
+        n_letters = letter_count(term) if letters is None else letters
+        conf, accepted = self.confidence(score[order], raw[order], n_letters)
+        return [Hit(term=term, broadcast=self.names[bi[i]], start=round(float(starts[i]), 3), end=round(float(ends[i]), 3),
+                    score=float(score[i]), confidence=float(conf[r]), rank=r + 1,
+                    accepted=None if accepted is None else bool(accepted[r]), raw=float(raw[i]), letters=n_letters)
+                for r, i in enumerate(order)]
+
+    def confidence(self, score, raw, letters):
+        if self.calibration is None:
+            return uncalibrated_confidence(score), None
+        from .calibration import hit_features
+
+        X = hit_features(np.asarray(score), np.asarray(raw), np.full(len(score), letters))
+        conf = self.calibration.confidence(X)
+        return conf, conf >= self.calibration.threshold
+
+    def search(self, term: str, top: int | None = 10, examples: list[np.ndarray] | None = None,
+               use_map: bool = True) -> list[Hit]:
+        t, _, v = self.spelling_vector(term, use_map=use_map)
+        if examples:
+            v = np.mean([v] + [e / np.linalg.norm(e) for e in examples], axis=0)
+        return self.search_vector(t, v, top=top)
+
+    def rescore(self, term: str, broadcast: str, start: float, end: float, use_map: bool = True) -> tuple[float, float]:
+        """(score, raw) of the best window for `term` overlapping (start, end) in `broadcast`."""
+        t, _, v = self.spelling_vector(term, use_map=use_map)
+        try:
+            bi = self.names.index(broadcast)
+        except ValueError:
+            raise TrawlError(f"{broadcast} is not in the index") from None
+        s, e = window_times(*self.spans[bi], self.index.windows)
+        over = np.flatnonzero((s < end) & (e > start))
+        if not len(over):
+            raise TrawlError(f"no indexed window of {broadcast} overlaps {start:.2f}-{end:.2f} s")
+        raw = self.index.vectors(self.firsts[bi] + over) @ v
+        bg = self.background @ v
+        best = float(raw.max())
+        return (best - float(bg.mean())) / float(bg.std() + 1e-6), best
+

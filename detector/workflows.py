@@ -1,0 +1,130 @@
+"""What the archivist does with a checked sample: calibrate confidences, adapt the query side.
+
+Both re-score each checked row from the index (the best window for that term overlapping the
+row's span), so they need the index, not the audio or the old scores. Neither ever changes
+the index's vectors: they write small, versioned JSON files beside them.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import date
+from pathlib import Path
+
+import numpy as np
+
+from . import TrawlError
+from .calibration import Calibration, fit_calibration, hit_features, reliability_svg, suggest_sample
+from .checked import read_checked, sample_hash
+from .hits import Hit
+from .search import Searcher
+from .spelling import letter_count, word_type
+
+CALIBRATION_FILE = "calibration.json"
+QUERY_MAP_FILE = "query_map.json"
+
+
+@dataclass
+class Scored:
+    terms: list[str]
+    X: np.ndarray  # hit features
+    y: np.ndarray  # 1 correct, 0 wrong
+    rows: list
+
+
+def score_checked(searcher: Searcher, path: Path, use_map: bool = True) -> Scored:
+    rows = [r for r in read_checked(path) if r.verdict is not None]
+    if not rows:
+        raise TrawlError(f"{path}: no row has a verdict (fill the verdict column with yes or no)")
+    scores, raws, letters, terms = [], [], [], []
+    for r in rows:
+        try:
+            s, raw = searcher.rescore(r.term, r.broadcast, r.start, r.end, use_map=use_map)
+        except TrawlError as e:
+            raise TrawlError(f"{path}, line {r.line}: {e}") from None
+        scores.append(s)
+        raws.append(raw)
+        letters.append(letter_count(r.term))
+        terms.append(word_type(r.term))
+    X = hit_features(np.array(scores), np.array(raws), np.array(letters))
+    return Scored(terms, X, np.array([1 if r.verdict else 0 for r in rows]), rows)
+
+
+def calibrate(index_dir: Path, checked: Path, target_precision: float = 0.9, diagram: Path | None = None,
+              models_dir: str | None = None) -> tuple[Calibration, Path]:
+    """Fit and store a calibration from a checked sample; write the reliability diagram."""
+    searcher = Searcher(index_dir, models_dir)
+    sc = score_checked(searcher, Path(checked))
+    cal = fit_calibration(sc.X, sc.y, sc.terms, target_precision=target_precision,
+                          total_seconds=searcher.total_seconds, sample_hash=sample_hash(checked))
+    cal.created = cal.created or date.today().isoformat()
+    cal.report["checked_sample"] = str(checked)
+    diagram = Path(diagram) if diagram else Path(checked).with_suffix(".reliability.svg")
+    oof = np.asarray(cal.report.get("out_of_fold", []), dtype=float)
+    probs = oof if len(oof) == len(sc.y) else cal.confidence(sc.X)
+    reliability_svg(probs, sc.y, diagram, title=f"Reliability, {len(sc.y)} checked hits (held-out folds)")
+    searcher.index.write_setting(CALIBRATION_FILE, cal.to_dict())
+    return cal, diagram
+
+
+def suggest(index_dir: Path, terms: list[str], n: int, per_term: int = 60, models_dir: str | None = None,
+            seed: int = 0) -> list[Hit]:
+    """N hits to check, spread over the given terms and their score ranges."""
+    if n <= 0:
+        raise TrawlError("--suggest needs a positive number of hits")
+    if not terms:
+        raise TrawlError("--suggest needs terms to search for (--terms FILE)")
+    searcher = Searcher(index_dir, models_dir)
+    pool = [h for t in terms for h in searcher.search(t, top=per_term)]
+    return suggest_sample(pool, n, seed=seed)
+
+
+def adapt(index_dir: Path, checked: Path, models_dir: str | None = None) -> dict:
+    """Fit the query-side map from a checked sample; store it when it helps held-out terms."""
+    from .adaptation import QueryMap, fit_query_map
+
+    searcher = Searcher(index_dir, models_dir, adapt=False)
+    rows = [r for r in read_checked(Path(checked)) if r.verdict is not None]
+    if not rows:
+        raise TrawlError(f"{checked}: no row has a verdict (fill the verdict column with yes or no)")
+    q, a, y, terms = [], [], [], []
+    for r in rows:
+        t, _, v = searcher.spelling_vector(r.term, use_map=False)
+        try:
+            bi = searcher.names.index(r.broadcast)
+        except ValueError:
+            raise TrawlError(f"{checked}, line {r.line}: {r.broadcast} is not in the index") from None
+        from .windows import window_times
+
+        s, e = window_times(*searcher.spans[bi], searcher.index.windows)
+        over = np.flatnonzero((s < r.end) & (e > r.start))
+        if not len(over):
+            raise TrawlError(f"{checked}, line {r.line}: no indexed window overlaps {r.start:.2f}-{r.end:.2f} s")
+        vecs = searcher.index.vectors(searcher.firsts[bi] + over)
+        a.append(vecs[int(np.argmax(vecs @ v))])
+        q.append(v)
+        y.append(1 if r.verdict else 0)
+        terms.append(t)
+    qmap, report = fit_query_map(np.array(q), np.array(a), y, terms)
+    qmap.sample_hash = sample_hash(checked)
+    searcher.index.write_setting(QUERY_MAP_FILE, qmap.to_dict())
+    report = dict(report)
+    report["stored"] = True
+    stored = searcher.index.read_setting(CALIBRATION_FILE)
+    if stored is not None and qmap.enabled:  # the confidence map follows the new query side
+        old = Calibration.from_dict(stored)
+        sample = Path(old.report.get("checked_sample", checked))
+        calibrate(index_dir, sample if sample.exists() else Path(checked), old.target_precision, models_dir=models_dir)
+        report["recalibrated"] = True
+    return report
+
+
+def clear(index_dir: Path, name: str) -> bool:
+    from .index_store import Index
+
+    idx = Index.open(Path(index_dir))
+    existed = (idx.root / name).exists()
+    idx.write_setting(name, None)
+    return existed
+
+

@@ -1,0 +1,1 @@
+"""Training pipeline (PyTorch, optional `[train]` extra). Never imported at run time."""

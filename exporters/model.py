@@ -1,0 +1,103 @@
+"""The two encoders, in torch.
+
+- FrameEncoder: log-mel frames -> 20 ms frame vectors. Convolutions only (dilated residual
+  blocks, per-frame layer norm), so every output frame depends on a bounded stretch of audio
+  (RECEPTIVE_SECONDS either side): running it once over a whole broadcast gives the same
+  frames as running it over any excerpt with that much context.
+- SpanHead: pooled span descriptor (detector/pooling.py) -> unit vector.
+- SpellingEncoder: NFD symbol ids -> unit vector in the same space.
+"""
+
+from __future__ import annotations
+
+import torch
+import torch.nn as nn
+import torch.nn.functional as F
+
+DILATIONS = (1, 2, 4, 8, 1, 2, 4, 8)
+
+
+class ChannelNorm(nn.Module):
+    """Layer norm over channels of each frame separately (never over time)."""
+
+    def __init__(self, c):
+        super().__init__()
+        self.norm = nn.LayerNorm(c)
+
+    def forward(self, x):  # (B, C, T)
+        return self.norm(x.transpose(1, 2)).transpose(1, 2)
+
+
+class Block(nn.Module):
+    def __init__(self, c, d):
+        super().__init__()
+        self.conv = nn.Conv1d(c, c, 3, padding=d, dilation=d)
+        self.norm = ChannelNorm(c)
+        self.mix = nn.Conv1d(c, c, 1)
+
+    def forward(self, x):
+        return x + self.mix(F.relu(self.norm(self.conv(x))))
+
+
+class FrameEncoder(nn.Module):
+    def __init__(self, n_mels=40, channels=128, out_dim=128, dilations=DILATIONS):
+        super().__init__()
+        self.register_buffer("mean", torch.zeros(n_mels))
+        self.register_buffer("std", torch.ones(n_mels))
+        self.stem = nn.Conv1d(n_mels, channels, 5, stride=2, padding=2)
+        self.blocks = nn.ModuleList(Block(channels, d) for d in dilations)
+        self.out = nn.Conv1d(channels, out_dim, 1)
+        # frames of 20 ms either side that one output frame can see
+        self.receptive_frames = 1 + sum(dilations)  # output frames of context either side
+
+    def forward(self, feats):  # (B, T, n_mels) -> (B, ceil(T/2), out_dim)
+        x = ((feats - self.mean) / self.std).transpose(1, 2)
+        x = F.relu(self.stem(x))
+        for b in self.blocks:
+            x = b(x)
+        return self.out(x).transpose(1, 2)
+
+
+class SpanHead(nn.Module):
+    def __init__(self, frame_dim=128, hidden=256, dim=64):
+        super().__init__()
+        self.net = nn.Sequential(nn.Linear(5 * frame_dim + 1, hidden), nn.ReLU(), nn.Linear(hidden, hidden),
+                                 nn.ReLU(), nn.Linear(hidden, dim))
+
+    def forward(self, pooled):
+        return F.normalize(self.net(pooled), dim=-1)
+
+
+class SpellingEncoder(nn.Module):
+    def __init__(self, n_symbols, emb=64, hidden=128, dim=64):
+        super().__init__()
+        self.emb = nn.Embedding(n_symbols, emb, padding_idx=0)
+        self.rnn = nn.GRU(emb, hidden, num_layers=2, bidirectional=True, batch_first=True)
+        self.proj = nn.Sequential(nn.Linear(4 * hidden, 256), nn.ReLU(), nn.Linear(256, dim))
+
+    def forward(self, ids, lengths=None):  # ids (B, L); lengths None means unpadded
+        x = self.emb(ids)
+        if lengths is not None:
+            x = nn.utils.rnn.pack_padded_sequence(x, lengths.cpu(), batch_first=True, enforce_sorted=False)
+            out, h = self.rnn(x)
+            out, _ = nn.utils.rnn.pad_packed_sequence(out, batch_first=True)
+            mask = (torch.arange(out.shape[1])[None, :] < lengths[:, None]).float()[..., None]
+            mean = (out * mask).sum(1) / lengths[:, None].float()
+        else:
+            out, h = self.rnn(x)
+            mean = out.mean(1)
+        last = torch.cat([h[-2], h[-1]], dim=-1)
+        return F.normalize(self.proj(torch.cat([last, mean], dim=-1)), dim=-1)
+
+
+def pool(frames, prefix, a, b):
+    """Torch mirror of detector.pooling.pool for one utterance: frames (T, H), prefix (T+1, H)."""
+    n = b - a
+    c1 = a + torch.div(n + 1, 3, rounding_mode="floor")
+    c2 = a + torch.div(2 * n + 1, 3, rounding_mode="floor")
+
+    def mean(lo, hi):
+        return (prefix[hi] - prefix[lo]) / (hi - lo).unsqueeze(1).float()
+
+    return torch.cat([mean(a, c1), mean(c1, c2), mean(c2, b), frames[a], frames[b - 1],
+                      torch.log(n.float() * 0.02).unsqueeze(1)], dim=1)
