@@ -43,6 +43,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from . import TrawlError
+from .evaluation import average_precision
 
 FORMAT_VERSION = 1
 MIN_HITS = 10
@@ -137,26 +138,6 @@ class QueryMap:
             created=str(data.get("created", "")),
             report=dict(data.get("report", {})),
         )
-
-
-def average_precision(scores: np.ndarray, labels: np.ndarray) -> float:
-    """Non-interpolated average precision of ranking ``labels`` (0/1) by ``scores``, descending.
-
-    Tied scores are one step: every item of a tie counts at the precision after
-    the whole tie. Raises ValueError with no positive label.
-    """
-    s = np.asarray(scores, dtype=np.float64)
-    y = np.asarray(labels).astype(bool)
-    n_pos = int(y.sum())
-    if n_pos == 0:
-        raise ValueError("average precision needs at least one positive label")
-    order = np.argsort(-s, kind="stable")
-    s, y = s[order], y[order]
-    ends = np.r_[np.nonzero(np.diff(s))[0], len(s) - 1]  # last index of each run of equal scores
-    tp = np.cumsum(y)[ends]
-    new_tp = np.diff(np.r_[0, tp])
-    precision = tp / (ends + 1)
-    return float(np.sum(precision * new_tp) / n_pos)
 
 
 @dataclass(frozen=True)

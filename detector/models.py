@@ -36,6 +36,15 @@ def check_card(card: dict) -> None:
         raise TrawlError("the model card disagrees with this program's feature settings (" + "; ".join(diffs) + ")")
 
 
+IDENTITY_KEYS = ("features", "frame_seconds", "receptive_frames", "frame_dim", "embedding_dim", "symbols", "windows", "files")
+
+
+def model_identity(card: dict) -> str:
+    """Hash of what makes the vectors what they are (not of metrics or notes added to the card later)."""
+    core = {k: card.get(k) for k in IDENTITY_KEYS}
+    return hashlib.sha256(json.dumps(core, sort_keys=True, ensure_ascii=False).encode("utf-8")).hexdigest()
+
+
 class Models:
     """ONNX sessions for the frame encoder, span head and spelling encoder."""
 
@@ -52,7 +61,7 @@ class Models:
         except json.JSONDecodeError as e:
             raise TrawlError(f"the model card {card_path} is not valid JSON ({e})") from None
         check_card(self.card)
-        self.card_hash = hashlib.sha256(raw).hexdigest()
+        self.card_hash = model_identity(self.card)
         opts = ort.SessionOptions()
         opts.intra_op_num_threads = int(os.environ.get("TRAWL_THREADS", "0"))
         opts.log_severity_level = 3

@@ -13,9 +13,9 @@ SR = 16000
 
 def speed(x: np.ndarray, factor: float) -> np.ndarray:
     """Play `factor` times faster (pitch moves too, like tape speed). Durations scale by 1/factor."""
-    import librosa
+    import soxr
 
-    return librosa.resample(x, orig_sr=SR * factor, target_sr=SR).astype(np.float32)
+    return soxr.resample(x, SR * factor, SR, quality="HQ").astype(np.float32)
 
 
 def coloured_noise(n: int, rng: np.random.Generator, slope: float = -1.0) -> np.ndarray:
@@ -100,6 +100,6 @@ def radio_chain(x: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, fl
         y = telephone(y, rng)
     elif c < 0.5:
         y = band_limit(y, 80, 4500)
-    if rng.random() < 0.4:
+    if rng.random() < 0.2:
         y = codec_round_trip(y, rng)
     return gain(y, rng), f, lead

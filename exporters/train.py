@@ -383,6 +383,16 @@ def main(argv=None):
         model.load_state_dict(st["model"]), opt.load_state_dict(st["opt"])
         step, best, history = st["step"], st["best"], st["history"]
     sampler = Sampler(items, rng)
+    probe = sampler.batch(n_pairs=6, n_random=4)  # a fixed batch: its loss before and after training
+
+    def probe_loss():
+        with torch.no_grad():
+            model.eval()
+            value = step_loss(model, items, probe, table, letters, random.Random(0))[0].item()
+            model.train()
+        return value
+
+    probe_before = probe_loss()
     budget = a.minutes * 60
     t_train = time.time()
     losses = []
@@ -417,12 +427,13 @@ def main(argv=None):
         print(json.dumps(history[-1]), flush=True)
     wall = (time.time() - t0) / 60
     best_path = a.work / ("quick-best.pt" if a.quick else "best.pt")
-    final = {"model": model.state_dict(), "step": step, "history": history, "inventory": inv, "losses": losses}
+    final = {"model": model.state_dict(), "step": step, "history": history, "inventory": inv, "losses": losses,
+             "probe_loss": (probe_before, probe_loss())}
     if best_path.exists() and not a.quick:
         final["model"] = torch.load(best_path, weights_only=False)["model"]
     from exporters.export_onnx import export
 
-    export(model_from_state(final), inv, a.out, {
+    final["card"] = export(model_from_state(final), inv, a.out, {
         "command": " ".join(["python", "-m", "exporters.train"] + (argv if argv is not None else sys.argv[1:])),
         "wall_minutes": round(wall, 1), "steps": step, "history": history,
         "train_utterances": len(train_u), "dev_utterances": len(dev_u), "heldout_utterances": len(held_u),
