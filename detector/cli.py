@@ -23,6 +23,8 @@ app = typer.Typer(
 rules_app = typer.Typer(help="Spelling rules stored in an index, applied to every search.", no_args_is_help=True)
 app.add_typer(rules_app, name="rules")
 out = Console()
+if not out.is_terminal:  # piped or captured: keep table rows on one line each
+    out = Console(width=int(os.environ.get("COLUMNS", "160")))
 err = Console(stderr=True)
 
 
@@ -72,8 +74,14 @@ def index_cmd(
     """
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
-    from .indexing import index_archive
+    from .index_store import Index
+    from .indexing import find_audio, index_archive
+    from .models import load
 
+    if not find_audio(archive):  # check before any progress bar or index folder appears
+        raise TrawlError(f"no audio files (WAV, FLAC, MP3, Ogg/Opus) under {archive}")
+    if (index / "trawl-index.json").exists():
+        Index.open(index).check_models(load(models))
     state = {"audio": 0.0}
     with Progress(TextColumn("[bold]{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total} files"),
                   TextColumn("{task.fields[hours]:.2f} h audio"), TextColumn("{task.fields[speed]}"),

@@ -70,6 +70,10 @@ class Searcher:
         if self.graph.get_current_count() == 0 or not len(self.firsts):
             raise TrawlError(f"the index at {self.index.root} holds no windows yet")
         self.total_seconds = self.index.total_seconds()
+        # label -> window: labels of a broadcast are contiguous, so one flat array per field suffices
+        self.offsets = np.concatenate([[0], np.cumsum(self.counts)[:-1]]).astype(np.int64)
+        self.flat_starts = np.concatenate([st for st, _ in self.spans]) if self.spans else np.zeros(0, np.int32)
+        self.flat_kinds = np.concatenate([kd for _, kd in self.spans]) if self.spans else np.zeros(0, np.uint8)
         rules_text = self.index.read_text("rules.txt") if use_stored_rules and rules is None else None
         self.rules = rules if rules is not None else (parse_rules(rules_text, "rules stored in the index") if rules_text else None)
         cal = self.index.read_setting("calibration.json")
@@ -128,12 +132,8 @@ class Searcher:
         bg = self.background @ v
         mu, sd = float(bg.mean()), float(bg.std() + 1e-6)
         score = (raw - mu) / sd
-        starts = np.empty(len(labels))
-        ends = np.empty(len(labels))
-        for j, (b, w) in enumerate(zip(bi, wi)):
-            st, kd = self.spans[b]
-            s, e = window_times(st[w : w + 1], kd[w : w + 1], self.index.windows)
-            starts[j], ends[j] = s[0], e[0]
+        pos = self.offsets[bi] + wi
+        starts, ends = window_times(self.flat_starts[pos], self.flat_kinds[pos], self.index.windows)
         order = nms(starts, ends, bi, score)
         if top:
             order = order[:top]

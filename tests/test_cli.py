@@ -1,0 +1,89 @@
+"""The command line: one-line errors with non-zero exits, the CSV/JSON contract, nothing half-written."""
+
+import csv
+import hashlib
+import io
+import json
+
+import pytest
+from typer.testing import CliRunner
+
+from detector.cli import app
+
+runner = CliRunner()
+COLUMNS = ["term", "broadcast", "start", "end", "start_hms", "end_hms", "score", "confidence", "rank", "verdict"]
+
+
+def run(*args):
+    r = runner.invoke(app, [str(a) for a in args])
+    return r.exit_code, r.stdout + (r.stderr if r.stderr_bytes is not None else "")
+
+
+@pytest.fixture(scope="module")
+def index(joined_broadcast, tmp_path_factory):
+    folder, _, _ = joined_broadcast
+    idx = tmp_path_factory.mktemp("cli") / "idx"
+    code, text = run("index", folder, "--index", idx)
+    assert code == 0, text
+    return idx
+
+
+def one_line_error(text):
+    lines = [ln for ln in text.strip().splitlines() if ln.strip()]
+    return len(lines) == 1 and lines[0].startswith("error:") and "Traceback" not in text
+
+
+def test_missing_index(tmp_path):
+    code, text = run("search", "ngá", "--index", tmp_path / "nothing")
+    assert code == 1 and one_line_error(text)
+
+
+def test_term_without_letters(index):
+    code, text = run("search", "1234 !!", "--index", index)
+    assert code == 1 and one_line_error(text) and "no letters" in text
+
+
+def test_empty_archive_leaves_nothing(tmp_path):
+    (tmp_path / "empty").mkdir()
+    code, text = run("index", tmp_path / "empty", "--index", tmp_path / "idx")
+    assert code == 1 and one_line_error(text)
+    assert not (tmp_path / "idx").exists()
+
+
+def test_csv_and_json_carry_the_documented_fields(index, tmp_path):
+    out = tmp_path / "hits.csv"
+    code, text = run("search", "mósωngώsώ", "=danger", "--index", index, "--top", "3", "--csv", out)
+    assert code == 0, text
+    with open(out, newline="", encoding="utf-8") as f:  # read back with the stdlib csv module
+        rows = list(csv.reader(f))
+    assert rows[0] == COLUMNS
+    assert len(rows) == 7 and [r[8] for r in rows[1:4]] == ["1", "2", "3"]
+    assert {r[0] for r in rows[1:]} == {"mósωngώsώ", "'=danger"}  # OWASP formula guard on text cells
+    code, text = run("search", "mósωngώsώ", "--index", index, "--top", "2", "--json")
+    data = json.loads(text)
+    assert [list(d.keys()) for d in data] == [COLUMNS, COLUMNS]
+    assert data[0]["start"] == float(rows[1][2])
+
+
+def tree_hash(folder):
+    h = hashlib.sha256()
+    for p in sorted(folder.rglob("*")):
+        if p.is_file():
+            h.update(p.name.encode() + p.read_bytes())
+    return h.hexdigest()
+
+
+@pytest.mark.parametrize("body, message", [
+    ("term,broadcast,start\nx,y,1\n", "verdict"),
+    ("term,broadcast,start,end,verdict\nngá,station/joined.wav,1.0,1.5,maybe\n", "maybe"),
+    ("term,broadcast,start,end,verdict\nngá,elsewhere.wav,1.0,1.5,yes\nngá,elsewhere.wav,3.0,3.5,no\n", "not in the index"),
+    ("term,broadcast,start,end,verdict\nngá,station/joined.wav,1.0,1.5,yes\nokándá,station/joined.wav,3.0,3.5,yes\n", "marked yes"),
+])
+def test_malformed_checked_sample_changes_nothing(index, tmp_path, body, message):
+    sample = tmp_path / "sample.csv"
+    sample.write_text(body, encoding="utf-8")
+    before = tree_hash(index)
+    code, text = run("calibrate", "--index", index, "--checked", sample)
+    assert code == 1 and one_line_error(text), text
+    assert message in text
+    assert tree_hash(index) == before

@@ -1,0 +1,76 @@
+"""Calibrate and adapt from a checked sample, end to end through the CLI, on real corpus speech."""
+
+import csv
+import hashlib
+
+import pytest
+from typer.testing import CliRunner
+
+from detector.cli import app
+from detector.search import Searcher
+from detector.spelling import letter_count
+
+runner = CliRunner()
+
+
+def run(*args):
+    r = runner.invoke(app, [str(a) for a in args])
+    return r.exit_code, r.stdout + (r.stderr if r.stderr_bytes is not None else "")
+
+
+@pytest.fixture(scope="module")
+def checked(joined_broadcast, tmp_path_factory):
+    """An index and a checked sample: each term's aligned occurrences (yes) and its top wrong hits (no).
+
+    Verdicts come from the corpus's word alignments (the 0.5 s midpoint rule), not from the model.
+    """
+    folder, name, words = joined_broadcast
+    tmp = tmp_path_factory.mktemp("flow")
+    code, text = run("index", folder, "--index", tmp / "idx")
+    assert code == 0, text
+    s = Searcher(tmp / "idx")
+    terms = sorted({w for _, _, w in words if letter_count(w) >= 4})[:8]
+    rows = []
+    for t in terms:
+        mids = [(a + b) / 2 for a, b, w in words if w == t]
+        rows += [(t, name, a, b, "yes") for a, b, w in words if w == t]
+        wrong = [h for h in s.search(t, top=12) if all(abs((h.start + h.end) / 2 - m) > 0.5 for m in mids)]
+        rows += [(t, name, h.start, h.end, "no") for h in wrong[:5]]
+    path = tmp / "sample.csv"
+    with open(path, "w", newline="", encoding="utf-8") as f:
+        w = csv.writer(f)
+        w.writerow(["term", "broadcast", "start", "end", "verdict"])
+        w.writerows(rows)
+    return tmp / "idx", path
+
+
+def digest(p):
+    return hashlib.sha256(p.read_bytes()).hexdigest()
+
+
+@pytest.mark.slow
+def test_calibrate_then_search_reports_accepted(checked, tmp_path):
+    idx, sample = checked
+    code, text = run("calibrate", "--index", idx, "--checked", sample, "--diagram", tmp_path / "rel.svg")
+    assert code == 0, text
+    assert (idx / "calibration.json").exists() and (tmp_path / "rel.svg").read_text().startswith("<svg")
+    assert "expected calibration error" in text
+    out = tmp_path / "hits.csv"
+    code, text = run("search", "mósωngώsώ", "--index", idx, "--all", "--top", "5", "--csv", out)
+    assert code == 0, text
+    with open(out, newline="", encoding="utf-8") as f:
+        header = next(csv.reader(f))
+    assert header[:11] == ["term", "broadcast", "start", "end", "start_hms", "end_hms", "score", "confidence",
+                           "rank", "accepted", "verdict"]
+
+
+@pytest.mark.slow
+def test_adapt_never_changes_the_indexed_vectors(checked):
+    idx, sample = checked
+    before = digest(idx / "graph.hnsw")
+    code, text = run("adapt", "--index", idx, "--checked", sample)
+    assert code == 0, text
+    assert (idx / "query_map.json").exists()
+    assert digest(idx / "graph.hnsw") == before
+    code, text = run("search", "mósωngώsώ", "--index", idx, "--no-adapt", "--all")
+    assert code == 0, text
