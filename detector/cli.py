@@ -175,6 +175,7 @@ def search_cmd(
     example: List[Path] = typer.Option(None, "--example", help="Also use this recording (a WAV file holding just the word) as an example. Repeatable."),
     clips: Optional[Path] = typer.Option(None, "--clips", help="Write each hit as a short WAV (with 0.5 s around it) into this folder."),
     archive: Optional[Path] = typer.Option(None, "--archive", help="The archive folder, for --clips (default: the one recorded in the index)."),
+    no_refine: bool = typer.Option(False, "--no-refine", help="Keep the index's coarse hit times (faster; no audio is read)."),
     models: Optional[str] = ModelsOpt,
 ):
     """Search an index for typed words; list the hits, best first.
@@ -187,6 +188,7 @@ def search_cmd(
     import numpy as np
 
     from .export import hits_to_json, write_csv
+    from .refine import refine_hits
     from .rules import load_rules
     from .search import Searcher
     from .spelling import strip_marks
@@ -209,15 +211,18 @@ def search_cmd(
     hits, below = [], 0
     for t in all_terms:
         term = strip_marks(t) if ignore_marks else t
-        if examples_given and not (terms or terms_file):
+        if examples_given and not (terms or terms_file):  # by example alone
             v = np.mean([e / np.linalg.norm(e) for e in ex_vecs], axis=0)
-            found = s.search_vector(term, v, top=None if calibrated and not show_all else top, letters=0)
         else:
-            found = s.search(term, top=None if calibrated and not show_all else top, examples=ex_vecs)
+            term, v = s.query(term, ex_vecs)
+        found = s.search_vector(term, v, top=None if calibrated and not show_all else top,
+                                letters=0 if term == "example" and not terms else None)
         if calibrated and not show_all:
             kept = [h for h in found if h.accepted]
             below += len(found) - len(kept)
             found = kept[:top]
+        if not no_refine and found:
+            refine_hits(found, v / np.linalg.norm(v), Path(archive or s.index.manifest.get("archive", "")), s.models)
         hits += found
     if csv_path:
         write_csv(hits, csv_path, calibrated=calibrated)

@@ -120,6 +120,7 @@ class Searcher:
 
     def search_vector(self, term: str, vector: np.ndarray, top: int | None = 10, letters: int | None = None,
                       candidates: int | None = None) -> list[Hit]:
+        """Hits for a query vector, best first, at the index's window times (see detector/refine.py)."""
         v = (vector / np.linalg.norm(vector)).astype(np.float32)
         n = self.graph.get_current_count()
         k = min(n, candidates or max(300, 40 * (top or 25)))
@@ -153,11 +154,16 @@ class Searcher:
         conf = self.calibration.confidence(X)
         return conf, conf >= self.calibration.threshold
 
-    def search(self, term: str, top: int | None = 10, examples: list[np.ndarray] | None = None,
-               use_map: bool = True) -> list[Hit]:
+    def query(self, term: str, examples: list[np.ndarray] | None = None, use_map: bool = True) -> tuple[str, np.ndarray]:
+        """The normalised term and its query vector: the spelling's, averaged with any examples."""
         t, _, v = self.spelling_vector(term, use_map=use_map)
         if examples:
             v = np.mean([v] + [e / np.linalg.norm(e) for e in examples], axis=0)
+        return t, v / np.linalg.norm(v)
+
+    def search(self, term: str, top: int | None = 10, examples: list[np.ndarray] | None = None,
+               use_map: bool = True) -> list[Hit]:
+        t, v = self.query(term, examples, use_map)
         return self.search_vector(t, v, top=top)
 
     def rescore(self, term: str, broadcast: str, start: float, end: float, use_map: bool = True) -> tuple[float, float]:

@@ -21,7 +21,7 @@ from detector.pooling import FRAME_SECONDS  # noqa: E402
 OPSET = 17
 FILES = {"frames": "frame_encoder.onnx", "head": "span_head.onnx", "spelling": "spelling_encoder.onnx"}
 # Windows stored in the index: (duration s, hop s). Shorter windows need a finer hop.
-WINDOWS = [[0.34, 0.06], [0.52, 0.08], [0.78, 0.12], [1.16, 0.18]]
+WINDOWS = [[0.34, 0.08], [0.52, 0.12], [0.78, 0.16], [1.16, 0.24]]
 
 PROVENANCE = (
     "Mboshi read speech with word alignments (Godard et al., LREC 2018, 'A Very Low Resource Language "

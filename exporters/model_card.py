@@ -1,0 +1,85 @@
+"""Write models/MODEL_CARD.md from models/card.json (the benchmark sections are kept as they are).
+
+    python -m exporters.model_card [--models models]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import re
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def render(card: dict) -> str:
+    f = card["features"]
+    t = card.get("training", {})
+    hist = t.get("history", [])
+    last = hist[-1] if hist else {}
+    best = max(hist, key=lambda h: h["acoustic_ap"] + h["crossview_ap"]) if hist else {}
+    lines = [
+        "# Trawl model card",
+        "",
+        f"Model `{card['name']}`, exported {card['created']} (ONNX opset 17): three files, run with onnxruntime on a CPU.",
+        "",
+        "| file | role | sha256 |",
+        "|---|---|---|",
+    ]
+    roles = {"frames": "frame encoder: log-mel frames -> 20 ms frame vectors (convolutional, bounded context)",
+             "head": "span head: pooled span descriptor -> unit vector",
+             "spelling": "spelling encoder: NFD symbols -> unit vector"}
+    for k, v in card["files"].items():
+        lines.append(f"| `{v['path']}` | {roles.get(k, k)} | `{v['sha256'][:16]}…` |")
+    lines += [
+        "",
+        "## Features (the runtime refuses a card that disagrees)",
+        f"- {f['sample_rate']} Hz mono; {f['n_mels']} mel bands ({f['mel_scale']}, {f['fmin']:.0f}–{f['fmax']:.0f} Hz); "
+        f"{f['window']} window of {f['win_length']} samples, FFT {f['n_fft']}, hop {f['hop_length']} samples (10 ms); "
+        f"natural log with floor {f['log_floor']}; {f['center']}; normalisation: {f['normalisation']}.",
+        f"- Frame encoder output every {card['frame_seconds'] * 1000:.0f} ms, {card['frame_dim']} dims; each frame sees "
+        f"±{card['receptive_frames']} frames ({card['receptive_frames'] * card['frame_seconds']:.2f} s) of context.",
+        f"- Embedding size {card['embedding_dim']}; symbol inventory of {len(card['symbols'])} symbols "
+        "(NFD letters and combining marks, space, apostrophe, hyphen; unknown symbols map to `<unk>`).",
+        "- Index windows (duration s, hop s): " + ", ".join(f"({d}, {h})" for d, h in card["windows"]) + ".",
+        "",
+        "## Training",
+        f"- Data: {card['provenance']}",
+        f"- Split: utterances grouped by transcript (repeated sentences never straddle the split); "
+        f"{t.get('heldout_utterances', '?')} held-out utterances (10%) never used in training or model selection; "
+        f"{t.get('dev_utterances', '?')} dev utterances for checkpoint selection; {t.get('train_utterances', '?')} training "
+        f"utterances in {t.get('variants', '?')} copies (clean + augmented: speed 0.9–1.1, music beds and noise at 5–35 dB SNR, "
+        "telephone/AM band, Vorbis/Opus round trip, gain).",
+        f"- Synthetic: {t.get('synthetic_utterances', 0)} espeak-ng utterances of pseudo-words in "
+        f"{', '.join(t.get('synthetic_languages', [])) or 'no'} spelling rules; demo and corpus words excluded.",
+        "- Losses: acoustic→spelling and spelling→acoustic InfoNCE with a cost-sensitive margin growing with edit distance "
+        "(capped at 4 edits), acoustic–acoustic supervised contrastive, spelling–spelling similarity bounded by edit distance; "
+        "non-word spans (part of a word, across a boundary, pause, music) as negatives; one-edit corrupted spellings as hard "
+        "negatives; random removal of combining marks.",
+        f"- Command: `{t.get('command', '')}`; wall time {t.get('wall_minutes', '?')} min on 2 CPU cores; {t.get('steps', '?')} steps.",
+        f"- Dev AP at the selected checkpoint (step {best.get('step', '?')}): acoustic {best.get('acoustic_ap', float('nan')):.3f}, "
+        f"cross-view {best.get('crossview_ap', float('nan')):.3f} (last: step {last.get('step', '?')}).",
+        "",
+        "## Terms",
+        "The corpus is a research corpus: credited here, not redistributed. Hits produced with these models are candidates "
+        "to be verified by listening.",
+        "",
+    ]
+    return "\n".join(lines)
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__)
+    ap.add_argument("--models", type=Path, default=ROOT / "models")
+    a = ap.parse_args(argv)
+    card = json.loads((a.models / "card.json").read_text(encoding="utf-8"))
+    md = a.models / "MODEL_CARD.md"
+    old = md.read_text(encoding="utf-8") if md.exists() else ""
+    sections = [m.group(0) for m in re.finditer(r"<!-- (\w+):start -->.*?<!-- \1:end -->", old, flags=re.S)]
+    md.write_text(render(card) + "\n" + "\n\n".join(sections) + ("\n" if sections else ""), encoding="utf-8")
+    print(f"wrote {md} ({len(sections)} benchmark sections kept)")
+
+
+if __name__ == "__main__":
+    main()
