@@ -294,6 +294,11 @@ def calibrate_cmd(
     t.add_row("recall at threshold (of checked correct hits)", f"{r.get('recall', float('nan')):.3f}", iv("recall_interval"))
     t.add_row("expected calibration error", f"{r.get('ece', float('nan')):.3f}", "")
     t.add_row("Brier score", f"{r.get('brier', float('nan')):.3f}", "")
+    per_term = cal.twv.get("per_term", {})
+    if per_term:
+        th = sorted(v["threshold"] for v in per_term.values())
+        t.add_row("TWV-optimal term thresholds (reported, not applied)",
+                  f"{th[len(th) // 2]:.3f} median", f"{th[0]:.3f}-{th[-1]:.3f}")
     out.print(t)
     out.print("Quality figures are from held-out folds of terms (each term's hits predicted by a map fitted without them).")
     for w in r.get("warnings", []):

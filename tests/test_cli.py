@@ -87,3 +87,44 @@ def test_malformed_checked_sample_changes_nothing(index, tmp_path, body, message
     assert code == 1 and one_line_error(text), text
     assert message in text
     assert tree_hash(index) == before
+
+
+def test_more_like_this_finds_the_example_itself_first(index):
+    """Search by example: an indexed stretch as the query ranks that stretch first (cosine 1 with itself)."""
+    from detector.search import Searcher
+
+    s = Searcher(index)
+    h = s.search("mósωngώsώ", top=1)[0]
+    code, text = run("search", "--like", f"{h.broadcast}@{h.start}-{h.end}", "--index", index, "--top", "1",
+                     "--json", "--no-refine")
+    assert code == 0, text
+    got = json.loads(text)[0]
+    assert (got["broadcast"], got["start"], got["end"]) == (h.broadcast, h.start, h.end)
+
+
+def test_clips_hold_the_hit_with_half_a_second_around_it(index, tmp_path):
+    import soundfile as sf
+
+    code, text = run("search", "mósωngώsώ", "--index", index, "--top", "2", "--json", "--no-refine",
+                     "--clips", tmp_path / "clips")
+    assert code == 0, text
+    hits = json.loads(text)
+    clips = sorted((tmp_path / "clips").glob("*.wav"))
+    assert len(clips) == 2
+    for c in clips:
+        info = sf.info(str(c))
+        assert min(abs(info.duration - (h["end"] - h["start"] + 1.0)) for h in hits) < 0.01
+
+
+def test_evaluate_prints_twv_for_a_transcribed_broadcast(index, joined_broadcast, tmp_path):
+    _, name, words = joined_broadcast
+    ref = tmp_path / "words.tsv"
+    ref.write_text("broadcast\tstart\tend\tword\n" + "".join(f"{name}\t{s:.3f}\t{e:.3f}\t{w}\n" for s, e, w in words),
+                   encoding="utf-8")
+    terms = tmp_path / "terms.txt"
+    terms.write_text("mósωngώsώ\nokándá\n", encoding="utf-8")
+    code, text = run("evaluate", "--index", index, "--reference", ref, "--terms", terms, "--json")
+    assert code == 0, text
+    res = json.loads(text)
+    assert set(res["per_term"]) == {"mósωngώsώ", "okándá"} and -1000 < res["mtwv"] <= 1.0
+    assert res["per_term"]["okándá"]["occurrences"] == sum(1 for *_, w in words if w == "okándá")
