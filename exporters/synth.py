@@ -88,50 +88,63 @@ def speak(word: str, voice: str, rate: int, pitch: int) -> np.ndarray:
     return x
 
 
+def plan(voice: str, words: list[str], renditions: int, rng: np.random.Generator) -> list[list[tuple]]:
+    """Utterances of 3-6 words, each word `renditions` times; one voice variant, rate and pitch per utterance."""
+    groups = []
+    for _ in range(renditions):
+        order = rng.permutation(len(words))
+        i = 0
+        while i < len(order):
+            size = int(rng.integers(3, 7))
+            variant = f"{voice}+{VARIANTS[rng.integers(len(VARIANTS))]}"
+            rate, pitch = int(rng.integers(120, 190)), int(rng.integers(30, 75))
+            groups.append([(words[j], variant, rate, pitch) for j in order[i:i + size]])
+            i += size
+    return groups
+
+
+def speak_groups(groups: list[list[tuple]]) -> list[list[np.ndarray]]:
+    flat = [job for g in groups for job in g]
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        clips = iter(list(pool.map(lambda j: speak(*j), flat)))
+    return [[next(clips) for _ in g] for g in groups]
+
+
+def join(words: list[str], clips: list[np.ndarray], rng: np.random.Generator) -> tuple[np.ndarray, list]:
+    """Clips joined with short pauses (and silence around): the signal and its (start, end, word) times."""
+    pieces = [np.zeros(int(rng.integers(3200, 8000)), np.float32)]
+    t, times = len(pieces[0]), []
+    for word, clip in zip(words, clips):
+        times.append((t / SAMPLE_RATE, (t + len(clip)) / SAMPLE_RATE, word))
+        gap = np.zeros(int(rng.integers(300, 3200)), np.float32)
+        pieces += [clip, gap]
+        t += len(clip) + len(gap)
+    pieces.append(np.zeros(int(rng.integers(3200, 8000)), np.float32))
+    audio = np.concatenate(pieces)
+    return audio / max(1e-6, float(np.abs(audio).max())) * 0.7, times
+
+
 def build(root: Path, words_per_language: int, renditions: int, seed: int, out: Path, languages=None) -> None:
     rng = np.random.default_rng(seed)
     exclude = excluded_words(root)
-    jobs = []  # (lang, word, voice, rate, pitch, group)
+    groups, keys = [], []
     for lang in languages or LANGUAGES:
-        words = pseudo_words(lang, words_per_language, rng, exclude)
-        for r in range(renditions):
-            order = rng.permutation(len(words))
-            i = 0
-            while i < len(order):
-                size = int(rng.integers(3, 7))
-                voice = f"{lang}+{VARIANTS[rng.integers(len(VARIANTS))]}"
-                rate, pitch = int(rng.integers(120, 190)), int(rng.integers(30, 75))
-                group = (lang, r, i)
-                jobs += [(lang, words[j], voice, rate, pitch, group) for j in order[i:i + size]]
-                i += size
-    with ThreadPoolExecutor(max_workers=2) as pool:
-        clips = list(pool.map(lambda j: speak(j[1], j[2], j[3], j[4]), jobs))
+        g = plan(lang, pseudo_words(lang, words_per_language, rng, exclude), renditions, rng)
+        groups += g
+        keys += [(lang, k) for k in range(len(g))]
+    clips = speak_groups(groups)
     utterances = []
-    groups: dict = {}
-    for job, clip in zip(jobs, clips):
-        groups.setdefault(job[5], []).append((job, clip))
-    for key, items in groups.items():
-        pieces, words, t = [], [], 0
-        lead = np.zeros(int(rng.integers(3200, 8000)), np.float32)
-        pieces.append(lead)
-        t = len(lead)
-        for job, clip in items:
-            words.append((t / SAMPLE_RATE, (t + len(clip)) / SAMPLE_RATE, job[1]))
-            gap = np.zeros(int(rng.integers(300, 3200)), np.float32)
-            pieces += [clip, gap]
-            t += len(clip) + len(gap)
-        pieces.append(np.zeros(int(rng.integers(3200, 8000)), np.float32))
-        audio = np.concatenate(pieces)
-        peak = max(1e-6, float(np.abs(audio).max()))
-        utterances.append({"id": f"syn-{key[0]}-{key[1]}-{key[2]}", "speaker": items[0][0][2], "lang": key[0],
-                           "audio": (audio / peak * 0.7 * 32767).astype(np.int16), "words": words})
+    for (lang, k), g, c in zip(keys, groups, clips):
+        audio, times = join([job[0] for job in g], c, rng)
+        utterances.append({"id": f"syn-{lang}-{k}", "speaker": g[0][1], "lang": lang,
+                           "audio": (audio * 32767).astype(np.int16), "words": times})
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = out.with_suffix(".tmp")
     with open(tmp, "wb") as f:
         pickle.dump(utterances, f)
     os.replace(tmp, out)
     hours = sum(len(u["audio"]) for u in utterances) / SAMPLE_RATE / 3600
-    print(f"{len(utterances)} synthetic utterances, {len(jobs)} words, {hours:.2f} h -> {out}")
+    print(f"{len(utterances)} synthetic utterances, {sum(len(g) for g in groups)} words, {hours:.2f} h -> {out}")
 
 
 if __name__ == "__main__":

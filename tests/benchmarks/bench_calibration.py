@@ -31,6 +31,9 @@ from detector import TrawlError  # noqa: E402
 from detector.calibration import (brier_score, expected_calibration_error, fit_calibration,  # noqa: E402
                                   hit_features, wilson_interval)
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from bench_search import jsonable  # noqa: E402
+
 
 def checked_sample(hits: list[dict], per_term: int) -> dict[str, list[dict]]:
     """Each term's `per_term` best-ranked hits."""
@@ -112,16 +115,6 @@ def print_table(runs: list[dict], summary: dict) -> None:
           f"(target {s['target_precision']}), accepted per run {fmt(s['accepted'], '.1f')}; "
           f"A's interval covered B's precision in {s['a_ci_covered']}/{s['runs_accepting']} runs, "
           f"B's interval reached the target in {s['b_ci_reached_target']}/{s['runs_accepting']}")
-
-
-def jsonable(v):
-    if isinstance(v, dict):
-        return {k: jsonable(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [jsonable(x) for x in v]
-    if isinstance(v, float) and not math.isfinite(v):
-        return None
-    return v
 
 
 def main(argv=None) -> None:

@@ -35,7 +35,6 @@ import json
 import sys
 import time
 import unicodedata
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -51,7 +50,7 @@ from detector.models import load as load_models  # noqa: E402
 from detector.rules import load_rules  # noqa: E402
 from detector.spelling import letter_count, strip_marks, word_type  # noqa: E402
 from exporters.corpus import MAX_WORD_SECONDS, load_audio, load_corpus, split_by_transcript  # noqa: E402
-from exporters.synth import LANGUAGES, SAMPLE_RATE, VARIANTS, excluded_words, plain, speak  # noqa: E402
+from exporters.synth import LANGUAGES, SAMPLE_RATE, excluded_words, join, plain, plan, speak_groups  # noqa: E402
 
 CORPUS = ROOT.parent / "shared" / "corpora" / "mboshi"
 RULES = ROOT / "models" / "rules" / "mboshi-respelled.rules"
@@ -261,36 +260,14 @@ def swahili_words(n: int, rng: np.random.Generator, exclude: set[str]) -> list[s
 
 
 def synthetic_tokens(n_words: int, renditions: int, seed: int) -> tuple[Tokens, float]:
-    """Speak the words ``renditions`` times in utterances of 3-6 words; embed every token."""
+    """Speak the words ``renditions`` times in utterances of 3-6 words (as the training
+    synthesis does, with the held-out voice); embed every token."""
     rng = np.random.default_rng(seed)
     words = swahili_words(n_words, rng, excluded_words(ROOT))
-    jobs, groups = [], []  # jobs: (word, voice, rate, pitch); groups: job index ranges
-    for _ in range(renditions):
-        order = rng.permutation(len(words))
-        i = 0
-        while i < len(order):
-            size = int(rng.integers(3, 7))
-            voice = f"{SWAHILI}+{VARIANTS[rng.integers(len(VARIANTS))]}"
-            rate, pitch = int(rng.integers(120, 190)), int(rng.integers(30, 75))
-            start = len(jobs)
-            jobs += [(words[j], voice, rate, pitch) for j in order[i : i + size]]
-            groups.append(range(start, len(jobs)))
-            i += size
-    with ThreadPoolExecutor(max_workers=2) as pool:
-        clips = list(pool.map(lambda j: speak(*j), jobs))
+    groups = plan(SWAHILI, words, renditions, rng)
     vectors, types, seconds = [], [], 0.0
-    for group in groups:
-        pieces = [np.zeros(int(rng.integers(3200, 8000)), np.float32)]
-        t, spans = len(pieces[0]), []
-        for j in group:
-            clip = clips[j]
-            spans.append((t / SAMPLE_RATE, (t + len(clip)) / SAMPLE_RATE, jobs[j][0]))
-            gap = np.zeros(int(rng.integers(300, 3200)), np.float32)
-            pieces += [clip, gap]
-            t += len(clip) + len(gap)
-        pieces.append(np.zeros(int(rng.integers(3200, 8000)), np.float32))
-        x = np.concatenate(pieces)
-        x = x / max(1e-6, float(np.abs(x).max())) * 0.7
+    for g, clips in zip(groups, speak_groups(groups)):
+        x, spans = join([job[0] for job in g], clips, rng)
         seconds += len(x) / SAMPLE_RATE
         kept = [(s, e, w) for s, e, w in spans if e - s <= MAX_WORD_SECONDS]
         if kept:
