@@ -205,10 +205,9 @@ def test_example_rules_file_parses_and_does_what_its_comments_say():
     rules = load_rules(EXAMPLE)
     assert isinstance(rules, RuleSet) and len(rules) > 0
     # each pair is worked by hand from the comments in the example file
-    assert rules.apply("matcho") == "matʃo"  # tch -> tʃ; its ʃ holds no c for c -> k
+    assert rules.apply("matcho") == "matso"  # tch -> ts; its s holds no c for c -> k
     assert rules.apply("cabo") == "kabo"
-    assert rules.apply("tolang") == "tolaŋ"
-    assert rules.apply("ngolo") == "ngolo"  # ng only at the end of a word
-    assert rules.apply("hamba") == "amba"
-    assert rules.apply("mote") == "motə"
-    assert rules.apply("Kaamè") == "kaːmɛ"  # aa -> aː, è -> ɛ
+    assert rules.apply("hamba") == "amba"  # h only at the start of a word
+    assert rules.apply("aha") == "aha"
+    assert rules.apply("Ka:mè") == "kaamε"  # a: -> aa, è -> ε
+    assert rules.apply("jo1la") == "yóla"  # j -> y, o1 -> ó
