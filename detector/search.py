@@ -21,6 +21,9 @@ from .spelling import check_term, letter_count
 from .windows import window_times
 
 BACKGROUND_SAMPLE = 4000
+FEEDBACK_HITS = 0  # pseudo-relevance feedback: top hits whose vectors are added to the query (0: off)
+FEEDBACK_WEIGHT = 1.0
+NORMALISE = True  # score = z-score of the cosine against the archive's windows (else the cosine itself)
 UNCALIBRATED_CENTRE, UNCALIBRATED_SCALE = 5.0, 1.0
 
 
@@ -57,11 +60,12 @@ class Query:
 
 class Searcher:
     def __init__(self, index_dir: Path | str, models_dir: str | None = None, rules=None, adapt: bool = True,
-                 use_stored_rules: bool = True):
+                 use_stored_rules: bool = True, feedback: int = FEEDBACK_HITS, normalise: bool = NORMALISE):
         from .adaptation import QueryMap
         from .calibration import Calibration
         from .rules import parse_rules
 
+        self.feedback, self.normalise = feedback, normalise
         self.index = Index.open(Path(index_dir))
         self.models = load(models_dir)
         self.index.check_models(self.models)
@@ -132,7 +136,7 @@ class Searcher:
         labels, raw, bi, wi = labels[keep], raw[keep], bi[keep], wi[keep]
         bg = self.background @ v
         mu, sd = float(bg.mean()), float(bg.std() + 1e-6)
-        score = (raw - mu) / sd
+        score = (raw - mu) / sd if self.normalise else raw
         pos = self.offsets[bi] + wi
         starts, ends = window_times(self.flat_starts[pos], self.flat_kinds[pos], self.index.windows)
         order = nms(starts, ends, bi, score)
@@ -159,7 +163,23 @@ class Searcher:
         t, _, v = self.spelling_vector(term, use_map=use_map)
         if examples:
             v = np.mean([v] + [e / np.linalg.norm(e) for e in examples], axis=0)
-        return t, v / np.linalg.norm(v)
+        v = v / np.linalg.norm(v)
+        return t, self.expand(v) if self.feedback else v
+
+    def expand(self, v: np.ndarray) -> np.ndarray:
+        """Pseudo-relevance feedback: add the mean vector of the query's best distinct windows."""
+        labels, _ = self.graph.knn_query(v[None].astype(np.float32), k=min(self.graph.get_current_count(), 60), num_threads=1)
+        labels = labels[0].astype(np.int64)
+        bi, wi = self.locate(labels)
+        ok = bi >= 0
+        labels, bi, wi = labels[ok], bi[ok], wi[ok]
+        pos = self.offsets[bi] + wi
+        starts, ends = window_times(self.flat_starts[pos], self.flat_kinds[pos], self.index.windows)
+        vecs = self.index.vectors(labels)
+        keep = nms(starts, ends, bi, vecs @ v)[: self.feedback]
+        fb = vecs[keep].mean(axis=0)
+        out = v + FEEDBACK_WEIGHT * fb / np.linalg.norm(fb)
+        return out / np.linalg.norm(out)
 
     def search(self, term: str, top: int | None = 10, examples: list[np.ndarray] | None = None,
                use_map: bool = True) -> list[Hit]:
@@ -168,7 +188,7 @@ class Searcher:
 
     def rescore(self, term: str, broadcast: str, start: float, end: float, use_map: bool = True) -> tuple[float, float]:
         """(score, raw) of the best window for `term` overlapping (start, end) in `broadcast`."""
-        t, _, v = self.spelling_vector(term, use_map=use_map)
+        t, v = self.query(term, use_map=use_map)
         try:
             bi = self.names.index(broadcast)
         except ValueError:
@@ -180,5 +200,5 @@ class Searcher:
         raw = self.index.vectors(self.firsts[bi] + over) @ v
         bg = self.background @ v
         best = float(raw.max())
-        return (best - float(bg.mean())) / float(bg.std() + 1e-6), best
+        return ((best - float(bg.mean())) / float(bg.std() + 1e-6) if self.normalise else best), best
 
