@@ -195,8 +195,8 @@ def search_cmd(
 
     if top < 1:
         raise TrawlError("--top must be at least 1")
-    examples_given = bool(like or example)
-    all_terms = _read_terms(terms, terms_file) if (terms or terms_file or not examples_given) else ["example"]
+    by_example = bool(like or example) and not (terms or terms_file)  # examples alone, no spelling
+    all_terms = ["(example)"] if by_example else _read_terms(terms, terms_file)
     rs = load_rules(rules) if rules else None
     s = Searcher(index, models, rules=rs, adapt=not no_adapt)
     ex_vecs = []
@@ -210,13 +210,12 @@ def search_cmd(
     calibrated = s.calibration is not None
     hits, below = [], 0
     for t in all_terms:
-        term = strip_marks(t) if ignore_marks else t
-        if examples_given and not (terms or terms_file):  # by example alone
-            v = np.mean([e / np.linalg.norm(e) for e in ex_vecs], axis=0)
+        if by_example:
+            term, v = t, np.mean([e / np.linalg.norm(e) for e in ex_vecs], axis=0)
         else:
-            term, v = s.query(term, ex_vecs)
+            term, v = s.query(strip_marks(t) if ignore_marks else t, ex_vecs)
         found = s.search_vector(term, v, top=None if calibrated and not show_all else top,
-                                letters=0 if term == "example" and not terms else None)
+                                letters=0 if by_example else None)
         if calibrated and not show_all:
             kept = [h for h in found if h.accepted]
             below += len(found) - len(kept)

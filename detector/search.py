@@ -100,18 +100,30 @@ class Searcher:
             v = self.query_map.apply(v[None])[0]
         return t, spelled, v
 
-    def window_vector(self, broadcast: str, start: float, end: float) -> np.ndarray:
-        """The stored vector of the window that best covers (start, end) in a broadcast."""
+    def overlapping(self, broadcast: str, start: float, end: float) -> tuple[np.ndarray, np.ndarray]:
+        """Labels of the stored windows of `broadcast` that overlap (start, end), and their overlap ratios (IoU)."""
         try:
             bi = self.names.index(broadcast)
         except ValueError:
             raise TrawlError(f"{broadcast} is not in the index") from None
         s, e = window_times(*self.spans[bi], self.index.windows)
-        inter = np.maximum(0, np.minimum(e, end) - np.maximum(s, start))
-        iou = inter / (np.maximum(e, end) - np.minimum(s, start))
-        if not len(iou) or iou.max() <= 0:
-            raise TrawlError(f"no indexed speech overlaps {broadcast} {start:.2f}-{end:.2f} s")
-        return self.index.vectors([self.firsts[bi] + int(np.argmax(iou))])[0]
+        inter = np.maximum(0.0, np.minimum(e, end) - np.maximum(s, start))
+        over = np.flatnonzero(inter > 0)
+        if not len(over):
+            raise TrawlError(f"no indexed window of {broadcast} overlaps {start:.2f}-{end:.2f} s")
+        iou = inter[over] / (np.maximum(e[over], end) - np.minimum(s[over], start))
+        return self.firsts[bi] + over, iou
+
+    def window_vector(self, broadcast: str, start: float, end: float) -> np.ndarray:
+        """The stored vector of the window that best covers (start, end) in a broadcast."""
+        labels, iou = self.overlapping(broadcast, start, end)
+        return self.index.vectors([labels[int(np.argmax(iou))]])[0]
+
+    def best_overlapping(self, v: np.ndarray, broadcast: str, start: float, end: float) -> np.ndarray:
+        """The stored vector, among windows overlapping (start, end), that is closest to query `v`."""
+        labels, _ = self.overlapping(broadcast, start, end)
+        vecs = self.index.vectors(labels)
+        return vecs[int(np.argmax(vecs @ v))]
 
     # ------------------------------------------------------------ search
     def locate(self, labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -189,16 +201,8 @@ class Searcher:
     def rescore(self, term: str, broadcast: str, start: float, end: float, use_map: bool = True) -> tuple[float, float]:
         """(score, raw) of the best window for `term` overlapping (start, end) in `broadcast`."""
         t, v = self.query(term, use_map=use_map)
-        try:
-            bi = self.names.index(broadcast)
-        except ValueError:
-            raise TrawlError(f"{broadcast} is not in the index") from None
-        s, e = window_times(*self.spans[bi], self.index.windows)
-        over = np.flatnonzero((s < end) & (e > start))
-        if not len(over):
-            raise TrawlError(f"no indexed window of {broadcast} overlaps {start:.2f}-{end:.2f} s")
-        raw = self.index.vectors(self.firsts[bi] + over) @ v
+        raw = float(self.best_overlapping(v, broadcast, start, end) @ v)
+        if not self.normalise:
+            return raw, raw
         bg = self.background @ v
-        best = float(raw.max())
-        return ((best - float(bg.mean())) / float(bg.std() + 1e-6) if self.normalise else best), best
-
+        return (raw - float(bg.mean())) / float(bg.std() + 1e-6), raw

@@ -91,17 +91,9 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None) -> dict
     for r in rows:
         t, _, v = searcher.spelling_vector(r.term, use_map=False)
         try:
-            bi = searcher.names.index(r.broadcast)
-        except ValueError:
-            raise TrawlError(f"{checked}, line {r.line}: {r.broadcast} is not in the index") from None
-        from .windows import window_times
-
-        s, e = window_times(*searcher.spans[bi], searcher.index.windows)
-        over = np.flatnonzero((s < r.end) & (e > r.start))
-        if not len(over):
-            raise TrawlError(f"{checked}, line {r.line}: no indexed window overlaps {r.start:.2f}-{r.end:.2f} s")
-        vecs = searcher.index.vectors(searcher.firsts[bi] + over)
-        a.append(vecs[int(np.argmax(vecs @ v))])
+            a.append(searcher.best_overlapping(v, r.broadcast, r.start, r.end))
+        except TrawlError as e:
+            raise TrawlError(f"{checked}, line {r.line}: {e}") from None
         q.append(v)
         y.append(1 if r.verdict else 0)
         terms.append(t)
