@@ -393,15 +393,15 @@ def evaluate_cmd(
     out.print(evaluation_table(res))
 
 
-def evaluation_table(res: dict) -> Table:
-    t = Table(title=f"Evaluation over {res['searched_hours']:.2f} h (TWV with beta 999.9, 0.5 s tolerance)")
+def evaluation_table(res: dict, where: str = "at the applied threshold") -> Table:
+    t = Table(title=f"Evaluation over {res['searched_hours']:.2f} h (TWV with beta 999.9, 0.5 s tolerance; "
+                    f"ATWV {where})")
     for c in ["term", "occurrences", "ATWV", "P@10", "recall@100"]:
         t.add_column(c, justify="left" if c == "term" else "right")
     for term, r in res["per_term"].items():
         t.add_row(term, str(r["occurrences"]), f"{r['twv']:.3f}" if r["twv"] is not None else "-", f"{r['p_at_10']:.2f}", f"{r['recall_at_100']:.2f}")
     t.add_row("[bold]all terms[/]", str(res["occurrences"]), f"{res['atwv']:.3f}", f"{res['p_at_10']:.2f}", f"{res['recall_at_100']:.2f}")
-    t.caption = (f"MTWV {res['mtwv']:.3f} (at score {res['mtwv_threshold']:.2f}); ATWV at the applied threshold "
-                 f"{res['atwv']:.3f}")
+    t.caption = f"MTWV {res['mtwv']:.3f} (at score {res['mtwv_threshold']:.2f}); ATWV {where} {res['atwv']:.3f}"
     return t
 
 

@@ -1,6 +1,6 @@
 """Train the acoustic and spelling encoders jointly (multi-view), then export them.
 
-    python -m exporters.train --corpus ../shared/corpora/mboshi --synth runs/synth.pkl --minutes 70
+    python -m exporters.train --synth runs/synth.pkl --minutes 62 --variants 2 --out models
     python -m exporters.train --quick --out /tmp/m   # a minute: a handful of utterances
 
 Losses (all in-batch, cosine similarities over a temperature):
@@ -341,8 +341,8 @@ def main(argv=None):
     ap.add_argument("--synth", type=Path, default=None, help="synthetic speech from exporters/synth.py")
     ap.add_argument("--out", type=Path, default=ROOT / "models")
     ap.add_argument("--work", type=Path, default=ROOT / "runs")
-    ap.add_argument("--minutes", type=float, default=70.0, help="training time budget")
-    ap.add_argument("--variants", type=int, default=3, help="copies of each corpus utterance: clean + augmented")
+    ap.add_argument("--minutes", type=float, default=62.0, help="training time budget (minutes)")
+    ap.add_argument("--variants", type=int, default=2, help="copies of each corpus utterance: clean + augmented")
     ap.add_argument("--quick", action="store_true", help="a handful of utterances, about a minute")
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--resume", action="store_true")

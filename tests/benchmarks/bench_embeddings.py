@@ -171,7 +171,8 @@ def cross_view(vecs: np.ndarray, codes: np.ndarray, spell_vecs: np.ndarray, spel
 
 
 def mfcc_features(x: np.ndarray) -> np.ndarray:
-    """(frames, 26): 13 MFCCs and their deltas, 25 ms windows every 10 ms."""
+    """(frames, 26): 13 MFCCs and their deltas, 25 ms windows every 10 ms, mean and variance
+    normalised over the token (common practice: without it c0, the energy, dominates the cosine)."""
     import librosa
 
     m = librosa.feature.mfcc(y=x, sr=SAMPLE_RATE, n_mfcc=13, n_fft=400, win_length=400,
@@ -182,7 +183,8 @@ def mfcc_features(x: np.ndarray) -> np.ndarray:
         d = librosa.feature.delta(m, width=width)
     else:
         d = librosa.feature.delta(m, width=3, mode="nearest")
-    return np.vstack([m, d]).T.astype(np.float64)
+    f = np.vstack([m, d]).T.astype(np.float64)
+    return (f - f.mean(axis=0)) / (f.std(axis=0) + 1e-8)
 
 
 def dtw_scores(feats: list[np.ndarray]) -> np.ndarray:
