@@ -14,7 +14,7 @@ from .features import HOP_SECONDS, SAMPLE_RATE, log_mel
 from .gating import speech_mask, speech_regions
 from .index_store import Index
 from .models import Models, load
-from .pooling import FRAME_SECONDS, pool, prefix_sums
+from .pooling import pool, prefix_sums
 from .windows import enumerate_windows, window_frames
 
 MERGE_EVERY_SECONDS = 300.0  # merge pending vectors into the graph at most this often
@@ -144,7 +144,3 @@ def index_archive(archive: Path, index_dir: Path, models_dir: str | None = None,
         idx.close()
     rep.wall_seconds = time.time() - t0
     return rep
-
-
-def frames_to_seconds(frames: np.ndarray) -> np.ndarray:
-    return np.asarray(frames) * FRAME_SECONDS

@@ -81,7 +81,7 @@ def suggest(index_dir: Path, terms: list[str], n: int, per_term: int = 60, model
 
 def adapt(index_dir: Path, checked: Path, models_dir: str | None = None) -> dict:
     """Fit the query-side map from a checked sample; store it when it helps held-out terms."""
-    from .adaptation import QueryMap, fit_query_map
+    from .adaptation import fit_query_map
 
     searcher = Searcher(index_dir, models_dir, adapt=False)
     rows = [r for r in read_checked(Path(checked)) if r.verdict is not None]
@@ -109,14 +109,3 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None) -> dict
         calibrate(index_dir, sample if sample.exists() else Path(checked), old.target_precision, models_dir=models_dir)
         report["recalibrated"] = True
     return report
-
-
-def clear(index_dir: Path, name: str) -> bool:
-    from .index_store import Index
-
-    idx = Index.open(Path(index_dir))
-    existed = (idx.root / name).exists()
-    idx.write_setting(name, None)
-    return existed
-
-

@@ -2,7 +2,6 @@
 
 import csv
 import hashlib
-import io
 import json
 
 import pytest

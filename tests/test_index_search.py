@@ -1,7 +1,6 @@
 """Indexing and searching: round trip, resumption after a crash, bad input, the main job end to end."""
 
 import json
-import os
 import subprocess
 import sys
 import textwrap

@@ -1,6 +1,5 @@
 """Hit times refined from the audio land on the best-matching span at 20 ms resolution."""
 
-import numpy as np
 
 from detector import api
 from detector.models import load

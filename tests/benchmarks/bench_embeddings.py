@@ -48,7 +48,7 @@ from detector import api  # noqa: E402
 from detector.evaluation import average_precision  # noqa: E402
 from detector.features import SAMPLE_RATE, log_mel  # noqa: E402
 from detector.indexing import embed_broadcast  # noqa: E402
-from detector.models import load as load_models, models_dir  # noqa: E402
+from detector.models import load as load_models  # noqa: E402
 from detector.spelling import letter_count, word_type  # noqa: E402
 from exporters.corpus import MAX_WORD_SECONDS, load_audio, load_corpus, split_by_transcript  # noqa: E402
 
