@@ -16,9 +16,12 @@ def evaluate_hits(hits, reference, terms, total_seconds: float, threshold: float
     """All measures for a set of hits (scored by `key`, accepted at `threshold`)."""
     best, best_t = mtwv(hits, reference, terms, total_seconds, key=key)
     per = term_breakdown(hits, reference, terms, total_seconds, threshold, key=key)
+    by_term: dict[str, list] = {}
+    for h in hits:
+        by_term.setdefault(h.term, []).append(h)
     per_term = {}
     for t, r in per.items():
-        th = [h for h in hits if h.term == t]
+        th = by_term.get(t, [])
         occurs = r.n_true > 0
         per_term[t] = {
             "occurrences": r.n_true,

@@ -253,18 +253,19 @@ class Index:
             if os.path.exists(tmp):
                 os.unlink(tmp)
         self.db.execute("update broadcasts set in_graph=1 where in_graph=0")
+        self._drop_stale_pending()
+        return g.get_current_count() - before
+
+    def _drop_stale_pending(self) -> None:
+        """Delete pending vector files that no unmerged, committed broadcast refers to."""
         live = {r[0] for r in self.db.execute("select first_label from broadcasts where in_graph=0")}
         for label, f in self._pending_files().items():
             if label not in live:
                 f.unlink(missing_ok=True)
-        return g.get_current_count() - before
 
     def clean_orphans(self) -> None:
         """Remove pending files of broadcasts whose commit never happened (a killed run)."""
-        live = {r[0] for r in self.db.execute("select first_label from broadcasts where in_graph=0")}
-        for label, f in self._pending_files().items():
-            if label not in live:
-                f.unlink(missing_ok=True)
+        self._drop_stale_pending()
         for f in self.root.glob(".*.tmp"):
             f.unlink(missing_ok=True)
         for f in (self.root / "pending").glob(".*.tmp"):

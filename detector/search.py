@@ -66,6 +66,7 @@ class Searcher:
         from .rules import parse_rules
 
         self.feedback, self.normalise = feedback, normalise
+        self._spelled: dict = {}
         self.index = Index.open(Path(index_dir))
         self.models = load(models_dir)
         self.index.check_models(self.models)
@@ -93,12 +94,15 @@ class Searcher:
     def spelling_vector(self, term: str, use_map: bool = True) -> tuple[str, str, np.ndarray]:
         from .api import embed_spellings
 
-        t = check_term(term)
-        spelled = self.rules.apply(t) if self.rules else t
-        v = embed_spellings([spelled])[0]
-        if use_map and self.query_map is not None and self.query_map.enabled:
-            v = self.query_map.apply(v[None])[0]
-        return t, spelled, v
+        key = (term, use_map)
+        if key not in self._spelled:  # checked samples and batches repeat terms: embed each once
+            t = check_term(term)
+            spelled = self.rules.apply(t) if self.rules else t
+            v = embed_spellings([spelled])[0]
+            if use_map and self.query_map is not None and self.query_map.enabled:
+                v = self.query_map.apply(v[None])[0]
+            self._spelled[key] = (t, spelled, v)
+        return self._spelled[key]
 
     def overlapping(self, broadcast: str, start: float, end: float) -> tuple[np.ndarray, np.ndarray]:
         """Labels of the stored windows of `broadcast` that overlap (start, end), and their overlap ratios (IoU)."""
@@ -146,9 +150,7 @@ class Searcher:
         bi, wi = self.locate(labels)
         keep = bi >= 0
         labels, raw, bi, wi = labels[keep], raw[keep], bi[keep], wi[keep]
-        bg = self.background @ v
-        mu, sd = float(bg.mean()), float(bg.std() + 1e-6)
-        score = (raw - mu) / sd if self.normalise else raw
+        score = self.score(raw, v)
         pos = self.offsets[bi] + wi
         starts, ends = window_times(self.flat_starts[pos], self.flat_kinds[pos], self.index.windows)
         order = nms(starts, ends, bi, score)
@@ -202,7 +204,11 @@ class Searcher:
         """(score, raw) of the best window for `term` overlapping (start, end) in `broadcast`."""
         t, v = self.query(term, use_map=use_map)
         raw = float(self.best_overlapping(v, broadcast, start, end) @ v)
+        return float(self.score(np.float64(raw), v)), raw
+
+    def score(self, raw: np.ndarray, v: np.ndarray) -> np.ndarray:
+        """Ranking score of cosines `raw` for query `v`: a z-score against the archive's windows (or raw)."""
         if not self.normalise:
-            return raw, raw
+            return raw
         bg = self.background @ v
-        return (raw - float(bg.mean())) / float(bg.std() + 1e-6), raw
+        return (raw - float(bg.mean())) / float(bg.std() + 1e-6)
