@@ -283,16 +283,20 @@ def calibrate_cmd(
     t.add_column("value", justify="right")
     t.add_column("95% interval", justify="right")
 
+    def num(key):
+        v = r.get(key)
+        return "-" if v is None or v != v else f"{v:.3f}"  # nothing accepted: no precision to report
+
     def iv(key):
         v = r.get(key)
         return f"{v[0]:.2f}-{v[1]:.2f}" if isinstance(v, (list, tuple)) and len(v) == 2 else ""
 
     t.add_row("checked hits (correct)", f"{r.get('n', '')} ({r.get('n_correct', '')})", "")
     t.add_row("threshold (confidence)", f"{cal.threshold:.3f}", "")
-    t.add_row(f"precision at threshold (target {cal.target_precision:.2f})", f"{r.get('precision', float('nan')):.3f}", iv("precision_interval"))
-    t.add_row("recall at threshold (of checked correct hits)", f"{r.get('recall', float('nan')):.3f}", iv("recall_interval"))
-    t.add_row("expected calibration error", f"{r.get('ece', float('nan')):.3f}", "")
-    t.add_row("Brier score", f"{r.get('brier', float('nan')):.3f}", "")
+    t.add_row(f"precision at threshold (target {cal.target_precision:.2f})", num("precision"), iv("precision_interval"))
+    t.add_row("recall at threshold (of checked correct hits)", num("recall"), iv("recall_interval"))
+    t.add_row("expected calibration error", num("ece"), "")
+    t.add_row("Brier score", num("brier"), "")
     per_term = cal.twv.get("per_term", {})
     if per_term:
         th = sorted(v["threshold"] for v in per_term.values())

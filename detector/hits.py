@@ -17,4 +17,5 @@ class Hit:
     accepted: bool | None = None  # at or above the calibrated threshold; None when no calibration exists
     raw: float = 0.0  # cosine similarity between the query and the window embedding
     letters: int = 0  # letters in the term (after NFD, marks removed)
+    aligned: bool = False  # times come from aligning the term's letters to the audio (detector/letters.py)
     extra: dict = field(default_factory=dict)  # extra columns, written after `verdict`

@@ -4,6 +4,8 @@ Layout of INDEX_DIR:
     trawl-index.json   what made the index: format version, model card hash, features, windows
     catalog.sqlite     broadcasts (path, content hash, duration, ...) and their windows
     pending/ID.npy     vectors of finished broadcasts not yet merged into the graph
+    letters/LABEL.npy  per broadcast, its letter posteriors (uint8, detector/letters.py), when the
+                       models have a letter head; LABEL is the broadcast's first window label
     graph.hnsw         hnswlib graph of all merged vectors (replaced atomically)
     calibration.json, rules.txt, query_map.json   query-side settings (optional)
 
@@ -26,7 +28,7 @@ import numpy as np
 
 from . import TrawlError
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 MANIFEST = "trawl-index.json"
 HNSW_M = 8
 HNSW_EF_CONSTRUCTION = 120
@@ -65,6 +67,14 @@ def atomic_write(path: Path, data: bytes) -> None:
         raise
 
 
+def _npy(a: np.ndarray) -> bytes:
+    import io
+
+    buf = io.BytesIO()
+    np.save(buf, a)
+    return buf.getvalue()
+
+
 def now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
@@ -92,6 +102,7 @@ class Index:
             raise TrawlError(f"{root} exists and is not a Trawl index: choose an empty or new folder")
         root.mkdir(parents=True, exist_ok=True)
         (root / "pending").mkdir(exist_ok=True)
+        (root / "letters").mkdir(exist_ok=True)
         manifest = {
             "format_version": FORMAT_VERSION,
             "model_card_sha256": models.card_hash,
@@ -100,6 +111,7 @@ class Index:
             "frame_seconds": models.card["frame_seconds"],
             "windows": [list(w) for w in models.windows],
             "dim": models.dim,
+            "letters": (models.card.get("letters") or {}).get("alphabet"),
             "hnsw": {"space": "ip", "M": HNSW_M, "ef_construction": HNSW_EF_CONSTRUCTION},
             "created": now(),
         }
@@ -121,6 +133,7 @@ class Index:
             raise TrawlError(f"the index at {root} has format version {manifest.get('format_version')}, "
                              f"this program reads version {FORMAT_VERSION}")
         (root / "pending").mkdir(exist_ok=True)
+        (root / "letters").mkdir(exist_ok=True)
         return cls(root, manifest)
 
     def check_models(self, models) -> None:
@@ -146,16 +159,16 @@ class Index:
         return max(row[0] or 0, int(kept[0]) if kept else 0)
 
     def add_broadcast(self, rel_path: str, sha256: str, duration: float, speech_seconds: float,
-                      starts: np.ndarray, kinds: np.ndarray, vectors: np.ndarray) -> None:
-        """Commit one finished broadcast: vectors to pending/, then one catalogue transaction."""
+                      starts: np.ndarray, kinds: np.ndarray, vectors: np.ndarray,
+                      letters: np.ndarray | None = None) -> None:
+        """Commit one finished broadcast: vectors to pending/ (and letter posteriors to letters/),
+        then one catalogue transaction."""
         old = self.known(rel_path)
         label = self.next_label()
         tmp_name = f"{sha256[:16]}-{label}.npy"
-        import io
-
-        buf = io.BytesIO()
-        np.save(buf, vectors.astype(np.float32))
-        atomic_write(self.root / "pending" / tmp_name, buf.getvalue())
+        if letters is not None:
+            atomic_write(self.root / "letters" / f"{label}.npy", _npy(letters.astype(np.uint8)))
+        atomic_write(self.root / "pending" / tmp_name, _npy(vectors.astype(np.float32)))
         cur = self.db.cursor()
         cur.execute("begin immediate")
         try:
@@ -254,6 +267,7 @@ class Index:
                 os.unlink(tmp)
         self.db.execute("update broadcasts set in_graph=1 where in_graph=0")
         self._drop_stale_pending()
+        self._drop_stale_letters()
         return g.get_current_count() - before
 
     def _drop_stale_pending(self) -> None:
@@ -263,9 +277,19 @@ class Index:
             if label not in live:
                 f.unlink(missing_ok=True)
 
+    def _drop_stale_letters(self) -> None:
+        """Delete letter files no committed broadcast refers to (a killed run's, a re-indexed broadcast's old one)."""
+        live = {r[0] for r in self.db.execute("select first_label from broadcasts")}
+        for f in (self.root / "letters").glob("*.npy"):
+            if not f.stem.isdigit() or int(f.stem) not in live:
+                f.unlink(missing_ok=True)
+
     def clean_orphans(self) -> None:
         """Remove pending files of broadcasts whose commit never happened (a killed run)."""
         self._drop_stale_pending()
+        self._drop_stale_letters()
+        for f in (self.root / "letters").glob(".*.tmp"):
+            f.unlink(missing_ok=True)
         for f in self.root.glob(".*.tmp"):
             f.unlink(missing_ok=True)
         for f in (self.root / "pending").glob(".*.tmp"):
@@ -279,6 +303,11 @@ class Index:
         counts = np.array([r[2] for r in rows], np.int64)
         spans = [(np.frombuffer(r[3], np.int32), np.frombuffer(r[4], np.uint8)) for r in rows]
         return [r[0] for r in rows], firsts, counts, spans
+
+    def letters(self, first_label: int) -> np.ndarray | None:
+        """The stored letter posteriors (uint8, memory-mapped) of the broadcast whose first label is given."""
+        p = self.root / "letters" / f"{int(first_label)}.npy"
+        return np.load(p, mmap_mode="r") if p.exists() else None
 
     def vectors(self, labels: np.ndarray) -> np.ndarray:
         g = self.load_graph()

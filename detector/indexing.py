@@ -13,6 +13,7 @@ from . import TrawlError, audio
 from .features import HOP_SECONDS, SAMPLE_RATE, log_mel
 from .gating import speech_mask, speech_regions
 from .index_store import Index
+from .letters import letter_logprobs, quantise
 from .models import Models, load
 from .pooling import pool, prefix_sums
 from .windows import enumerate_windows, window_frames
@@ -27,6 +28,7 @@ class Embedded:
     starts: np.ndarray  # window start frames (20 ms)
     kinds: np.ndarray  # index into the window schedule
     vectors: np.ndarray  # (n, d) unit rows
+    letters: np.ndarray | None = None  # (frames, letters + 1) uint8 posteriors, when the models have a letter head
 
 
 def embed_broadcast(models: Models, samples: np.ndarray) -> Embedded:
@@ -34,6 +36,7 @@ def embed_broadcast(models: Models, samples: np.ndarray) -> Embedded:
     feats = log_mel(samples)
     regions = speech_regions(speech_mask(feats), HOP_SECONDS)
     frames = models.frames(feats)
+    posteriors = quantise(letter_logprobs(models, feats, frames)) if models.has_letters else None
     n = len(frames)
     all_starts, all_kinds, all_vecs = [], [], []
     for lo, hi in regions:
@@ -55,6 +58,7 @@ def embed_broadcast(models: Models, samples: np.ndarray) -> Embedded:
         starts=np.concatenate(all_starts) if all_starts else np.zeros(0, np.int32),
         kinds=np.concatenate(all_kinds) if all_kinds else np.zeros(0, np.uint8),
         vectors=vecs.astype(np.float32),
+        letters=posteriors,
     )
 
 
@@ -129,7 +133,7 @@ def index_archive(archive: Path, index_dir: Path, models_dir: str | None = None,
                     progress("file", path=rel, status="failed", seconds=0.0, size=size, error=str(e))
                 continue
             emb = embed_broadcast(models, samples)
-            idx.add_broadcast(rel, digest, emb.duration, emb.speech_seconds, emb.starts, emb.kinds, emb.vectors)
+            idx.add_broadcast(rel, digest, emb.duration, emb.speech_seconds, emb.starts, emb.kinds, emb.vectors, emb.letters)
             rep.indexed.append(rel)
             rep.audio_seconds += emb.duration
             rep.speech_seconds += emb.speech_seconds

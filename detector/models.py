@@ -36,7 +36,8 @@ def check_card(card: dict) -> None:
         raise TrawlError("the model card disagrees with this program's feature settings (" + "; ".join(diffs) + ")")
 
 
-IDENTITY_KEYS = ("features", "frame_seconds", "receptive_frames", "frame_dim", "embedding_dim", "symbols", "windows", "files")
+IDENTITY_KEYS = ("features", "frame_seconds", "receptive_frames", "frame_dim", "embedding_dim", "symbols", "windows", "files",
+                 "letters")
 
 
 def model_identity(card: dict) -> str:
@@ -76,6 +77,10 @@ class Models:
         self.dim = int(self.card["embedding_dim"])
         self.context_frames = int(self.card["receptive_frames"])
         self.windows = [tuple(w) for w in self.card["windows"]]
+        self.has_letters = "letters" in self.sessions and "letters" in self.card
+        self.alphabet = self.card["letters"]["alphabet"] if self.has_letters else []
+        self.letter_table = {c: i + 1 for i, c in enumerate(self.alphabet)}  # class 0 is the CTC blank
+        self.rescoring = self.card.get("rescoring", {}) if self.has_letters else {}
 
     # acoustic side -------------------------------------------------------
     def frames(self, logmel: np.ndarray) -> np.ndarray:

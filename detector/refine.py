@@ -53,9 +53,11 @@ def refine(models, vector: np.ndarray, path: Path, start: float, end: float) -> 
 
 
 def refine_hits(hits, vector: np.ndarray, archive: Path, models) -> int:
-    """Refine the times of hits in place; returns how many could be refined (audio found and readable)."""
+    """Refine the times of hits in place (those not already letter-aligned); returns how many were refined."""
     done = 0
     for h in hits:
+        if h.aligned:  # the letter alignment already placed it at 20 ms resolution
+            continue
         src = Path(archive) / h.broadcast
         try:
             h.start, h.end = refine(models, vector, src, h.start, h.end)

@@ -4,6 +4,13 @@ Scores are made comparable across terms by normalising each query's cosine simil
 against that query's similarities to a fixed random sample of the archive's windows
 (a per-term z-score): short, common-sounding words score high everywhere, and this
 removes that offset before any threshold is applied.
+
+When the models have a letter head, a second look re-ranks the candidates: each candidate's
+stretch of audio (its window, LETTER_MARGIN either side) is aligned with the term's letters
+over the stored letter posteriors (detector/letters.py); the score becomes the embedding
+z-score plus `weight` times the alignment cost per letter, and the hit takes the aligned
+times. The weight is fitted on the dev split's broadcasts (exporters/fit_rescoring.py) and
+recorded in the model card.
 """
 
 from __future__ import annotations
@@ -16,6 +23,7 @@ import numpy as np
 from . import TrawlError
 from .hits import Hit
 from .index_store import Index
+from .letters import dequantise, keyword_scores, letter_ids
 from .models import load
 from .spelling import check_term, letter_count
 from .windows import window_times
@@ -24,6 +32,9 @@ BACKGROUND_SAMPLE = 4000
 FEEDBACK_HITS = 0  # pseudo-relevance feedback: top hits whose vectors are added to the query (0: off)
 FEEDBACK_WEIGHT = 1.0
 NORMALISE = True  # score = z-score of the cosine against the archive's windows (else the cosine itself)
+LETTER_MARGIN = 0.25  # seconds of audio either side of a candidate window searched by the letter alignment
+LETTER_FLOOR = -8.0  # lowest alignment cost per letter counted (no alignment fits: this)
+DEFAULT_LETTER_WEIGHT = 1.0  # used when the model card records no fitted weight
 UNCALIBRATED_CENTRE, UNCALIBRATED_SCALE = 7.0, 1.0  # centre: between the MTWV thresholds of the held-out benchmark (6.4 radio, 7.3 clean)
 
 
@@ -67,6 +78,7 @@ class Searcher:
 
         self.feedback, self.normalise = feedback, normalise
         self._spelled: dict = {}
+        self._letters: dict = {}
         self.index = Index.open(Path(index_dir))
         self.models = load(models_dir)
         self.index.check_models(self.models)
@@ -89,6 +101,8 @@ class Searcher:
         live = np.concatenate([np.arange(f, f + c) for f, c in zip(self.firsts, self.counts)])
         pick = live if len(live) <= BACKGROUND_SAMPLE else rng.choice(live, BACKGROUND_SAMPLE, replace=False)
         self.background = self.index.vectors(np.sort(pick))
+        self.letter_pass = self.models.has_letters and self.index.manifest.get("letters") == self.models.alphabet
+        self.letter_weight = float(self.models.rescoring.get("weight", DEFAULT_LETTER_WEIGHT))
 
     # ------------------------------------------------------------ queries
     def spelling_vector(self, term: str, use_map: bool = True) -> tuple[str, str, np.ndarray]:
@@ -140,7 +154,7 @@ class Searcher:
 
     def search_vector(self, term: str, vector: np.ndarray, top: int | None = 10, letters: int | None = None,
                       candidates: int | None = None) -> list[Hit]:
-        """Hits for a query vector, best first, at the index's window times (see detector/refine.py)."""
+        """Hits for a query vector, best first. With `letters=0` (search by example) the letter pass is skipped."""
         v = (vector / np.linalg.norm(vector)).astype(np.float32)
         n = self.graph.get_current_count()
         k = min(n, candidates or max(300, 40 * (top or 25)))
@@ -154,14 +168,67 @@ class Searcher:
         pos = self.offsets[bi] + wi
         starts, ends = window_times(self.flat_starts[pos], self.flat_kinds[pos], self.index.windows)
         order = nms(starts, ends, bi, score)
+        n_letters = letter_count(term) if letters is None else letters
+        ids = self.letter_targets(term) if (self.letter_pass and n_letters) else []
+        aligned = np.zeros(len(score), bool)
+        if ids:
+            cost, a_start, a_end = self.align(ids, bi[order], starts[order], ends[order])
+            ok = cost > -np.inf
+            score, raw, bi = score[order], raw[order], bi[order]
+            starts = np.where(ok, a_start, starts[order])
+            ends = np.where(ok, a_end, ends[order])
+            score = self.combine(score, cost, len(ids))
+            aligned = ok
+            order = nms(starts, ends, bi, score)
         if top:
             order = order[:top]
-        n_letters = letter_count(term) if letters is None else letters
         conf, accepted = self.confidence(score[order], raw[order], n_letters)
         return [Hit(term=term, broadcast=self.names[bi[i]], start=round(float(starts[i]), 3), end=round(float(ends[i]), 3),
                     score=float(score[i]), confidence=float(conf[r]), rank=r + 1,
-                    accepted=None if accepted is None else bool(accepted[r]), raw=float(raw[i]), letters=n_letters)
+                    accepted=None if accepted is None else bool(accepted[r]), raw=float(raw[i]), letters=n_letters,
+                    aligned=bool(aligned[i]))
                 for r, i in enumerate(order)]
+
+    # ------------------------------------------------------------ letter pass
+    def letter_targets(self, term: str) -> list[int]:
+        """Letter classes of the term as spelled for the model (after the spelling rules)."""
+        return letter_ids(self.spelling_vector(term, use_map=False)[1], self.models.letter_table)
+
+    def broadcast_letters(self, b: int):
+        if b not in self._letters:
+            self._letters[b] = self.index.letters(int(self.firsts[b]))
+        return self._letters[b]
+
+    def align(self, ids: list[int], bi: np.ndarray, starts: np.ndarray, ends: np.ndarray):
+        """Alignment cost (<= 0, -inf where none fits) and aligned times of each candidate stretch."""
+        fs = float(self.index.manifest["frame_seconds"])
+        regions, offsets, where = [], [], []
+        for i, (b, s0, e0) in enumerate(zip(bi, starts, ends)):
+            post = self.broadcast_letters(int(b))
+            if post is None:
+                continue
+            lo = max(0, int(np.floor((s0 - LETTER_MARGIN) / fs)))
+            hi = min(len(post), int(np.ceil((e0 + LETTER_MARGIN) / fs)))
+            if hi - lo >= len(ids):
+                regions.append(dequantise(np.asarray(post[lo:hi])))
+                offsets.append(lo)
+                where.append(i)
+        cost = np.full(len(bi), -np.inf)
+        a_start, a_end = np.asarray(starts, np.float64).copy(), np.asarray(ends, np.float64).copy()
+        if regions:
+            c, first, last = keyword_scores(regions, ids)
+            w = np.array(where)
+            good = first >= 0
+            off = np.array(offsets)
+            cost[w[good]] = c[good]
+            a_start[w[good]] = (off[good] + first[good]) * fs
+            a_end[w[good]] = (off[good] + last[good] + 1) * fs
+        return cost, a_start, a_end
+
+    def combine(self, z: np.ndarray, cost: np.ndarray, n_letters: int) -> np.ndarray:
+        """The second-look score: embedding z-score plus weight x alignment cost per letter (floored)."""
+        per_letter = np.maximum(np.asarray(cost, np.float64) / max(1, n_letters), LETTER_FLOOR)
+        return np.asarray(z, np.float64) + self.letter_weight * per_letter
 
     def confidence(self, score, raw, letters):
         if self.calibration is None:
@@ -204,7 +271,12 @@ class Searcher:
         """(score, raw) of the best window for `term` overlapping (start, end) in `broadcast`."""
         t, v = self.query(term, use_map=use_map)
         raw = float(self.best_overlapping(v, broadcast, start, end) @ v)
-        return float(self.score(np.float64(raw), v)), raw
+        z = float(self.score(np.float64(raw), v))
+        ids = self.letter_targets(t) if self.letter_pass else []
+        if ids:
+            cost = self.align(ids, np.array([self.names.index(broadcast)]), np.array([start]), np.array([end]))[0]
+            z = float(self.combine(np.array([z]), cost, len(ids))[0])
+        return z, raw
 
     def score(self, raw: np.ndarray, v: np.ndarray) -> np.ndarray:
         """Ranking score of cosines `raw` for query `v`: a z-score against the archive's windows (or raw)."""

@@ -101,3 +101,29 @@ def pool(frames, prefix, a, b):
 
     return torch.cat([mean(a, c1), mean(c1, c2), mean(c2, b), frames[a], frames[b - 1],
                       torch.log(n.float() * 0.02).unsqueeze(1)], dim=1)
+
+
+class LetterHead(nn.Module):
+    """Frame vectors (and the log-mel frames under them) -> per-frame letter log-probabilities (CTC).
+
+    Reads the frame encoder's 20 ms outputs plus its own strided view of the log-mel features;
+    convolutions only, so the output at a frame depends on a bounded stretch of audio and the
+    head can run over a broadcast in chunks. Class 0 is the CTC blank.
+    """
+
+    def __init__(self, n_letters, n_mels=40, frame_dim=128, channels=256):
+        super().__init__()
+        self.register_buffer("mean", torch.zeros(n_mels))
+        self.register_buffer("std", torch.ones(n_mels))
+        self.mel = nn.Conv1d(n_mels, 96, 5, stride=2, padding=2)  # same length rule as the frame encoder's stem
+        self.inp = nn.Conv1d(frame_dim + 96, channels, 5, padding=2)
+        self.blocks = nn.ModuleList(Block(channels, d) for d in (2, 4))
+        self.out = nn.Conv1d(channels, n_letters + 1, 1)
+        self.receptive_frames = 2 + 2 + 4 + 2  # 20 ms frames either side, beyond the frame encoder's own
+
+    def forward(self, frames, logmel):  # (B, T2, H), (B, T, n_mels) -> (B, T2, n_letters + 1)
+        m = F.relu(self.mel(((logmel - self.mean) / self.std).transpose(1, 2)))
+        x = F.relu(self.inp(torch.cat([frames.transpose(1, 2), m], dim=1)))
+        for b in self.blocks:
+            x = b(x)
+        return F.log_softmax(self.out(x), dim=1).transpose(1, 2)

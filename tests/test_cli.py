@@ -89,7 +89,10 @@ def test_malformed_checked_sample_changes_nothing(index, tmp_path, body, message
 
 
 def test_more_like_this_finds_the_example_itself_first(index):
-    """Search by example: an indexed stretch as the query ranks that stretch first (cosine 1 with itself)."""
+    """Search by example: an indexed stretch as the query ranks that stretch first (cosine 1 with itself).
+
+    The text hit's times come from the letter alignment, the example hit's from the stored window
+    that best covers them: the two overlap, the window holding the hit's midpoint."""
     from detector.search import Searcher
 
     s = Searcher(index)
@@ -98,7 +101,8 @@ def test_more_like_this_finds_the_example_itself_first(index):
                      "--json", "--no-refine")
     assert code == 0, text
     got = json.loads(text)[0]
-    assert (got["broadcast"], got["start"], got["end"]) == (h.broadcast, h.start, h.end)
+    assert got["broadcast"] == h.broadcast
+    assert got["start"] <= (h.start + h.end) / 2 <= got["end"], (got, h)
 
 
 def test_clips_hold_the_hit_with_half_a_second_around_it(index, tmp_path):

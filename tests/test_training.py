@@ -54,3 +54,52 @@ def test_numpy_pooling_matches_torch_pooling():
     np.testing.assert_allclose(want[1, :6], frames[3:9].mean(0), atol=1e-6)
     np.testing.assert_allclose(want[1, 6:12], frames[9:14].mean(0), atol=1e-6)
     np.testing.assert_allclose(want[1, -1], np.log(17 * 0.02), atol=1e-6)
+
+
+@pytest.fixture(scope="module")
+def quick_letters(quick, corpus):
+    from exporters.train_letters import main
+
+    _, out = quick
+    card = main(["--quick", "--corpus", str(corpus), "--models", str(out)])
+    return card, out
+
+
+@pytest.mark.slow
+def test_quick_letter_head_learns_and_loads(quick_letters):
+    from detector.letters import alphabet_of
+    from detector.models import Models
+
+    card, out = quick_letters
+    t = card["letters"]["training"]
+    assert t["dev_letter_error"] < t["dev_letter_error_untrained"]
+    m = Models(out)  # the runtime loader checks the new file's hash in the card
+    assert m.has_letters and m.alphabet == alphabet_of(m.symbols)
+
+
+@pytest.mark.slow
+def test_letter_head_onnx_matches_torch(quick_letters):
+    import onnxruntime as ort
+
+    from exporters.model import LetterHead
+
+    card, out = quick_letters
+    sess = ort.InferenceSession(str(out / "letter_head.onnx"), providers=["CPUExecutionProvider"])
+    head = LetterHead(len(card["letters"]["alphabet"]), frame_dim=card["frame_dim"])
+    # the exported graph's own weights, read back into torch through the initialisers
+    import onnx
+    from onnx import numpy_helper
+
+    weights = {i.name: numpy_helper.to_array(i) for i in onnx.load(str(out / "letter_head.onnx")).graph.initializer}
+    state = {k: torch.from_numpy(weights[k].copy()) for k in head.state_dict() if k in weights}
+    assert len(state) == len(head.state_dict())
+    head.load_state_dict(state)
+    head.eval()
+    rng = np.random.default_rng(1)
+    fr = rng.standard_normal((1, 57, card["frame_dim"])).astype(np.float32)
+    lm = rng.standard_normal((1, 113, 40)).astype(np.float32) - 5
+    got = sess.run(None, {"frames": fr, "logmel": lm})[0]
+    with torch.no_grad():
+        want = head(torch.from_numpy(fr), torch.from_numpy(lm)).numpy()
+    assert got.shape == (1, 57, len(card["letters"]["alphabet"]) + 1)
+    np.testing.assert_allclose(got, want, atol=1e-4)

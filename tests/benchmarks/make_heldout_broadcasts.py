@@ -44,6 +44,7 @@ from exporters.corpus import MAX_WORD_SECONDS, load_audio, load_corpus, split_by
 
 DEFAULT_CORPUS = ROOT.parent / "shared" / "corpora" / "mboshi"
 HELD_OUT_FRACTION = 0.1
+DEV_FRACTION, DEV_SALT = 0.05, "trawl-dev-1"  # as exporters/train.py
 MIN_LETTERS = 6
 PAUSE_SECONDS = (0.3, 1.0)
 MUSIC_SNR_DB = 15.0
@@ -126,10 +127,17 @@ def term_table(words, train_types: set[str]) -> list[tuple[str, str, int]]:
 
 
 def build(out: Path, corpus: Path = DEFAULT_CORPUS, minutes_total: float | None = None, seed: int = 0,
-          broadcast_minutes: float = 5.0, opus: bool = True) -> dict:
-    """Write the broadcasts, reference and terms under `out`; returns the manifest."""
+          broadcast_minutes: float = 5.0, opus: bool = True, split: str = "heldout") -> dict:
+    """Write the broadcasts, reference and terms under `out`; returns the manifest.
+
+    split "heldout": the held-out utterances (benchmarks); "dev": the training run's dev
+    utterances (for fitting search settings, never the held-out ones)."""
     out = Path(out)
     train, held = split_by_transcript(load_corpus(corpus), HELD_OUT_FRACTION)
+    if split == "dev":
+        train, held = split_by_transcript(train, DEV_FRACTION, salt=DEV_SALT)
+    elif split != "heldout":
+        raise ValueError(f"unknown split {split!r}")
     rng = np.random.default_rng(seed)
     groups = group(choose_utterances(held, minutes_total, rng), broadcast_minutes)
     for cond in ("clean", "radio"):
@@ -153,7 +161,7 @@ def build(out: Path, corpus: Path = DEFAULT_CORPUS, minutes_total: float | None 
         w.writerow(["term", "split", "occurrences"])
         w.writerows(terms)
     manifest = {"corpus": str(Path(corpus).resolve()), "minutes_total": minutes_total, "seed": seed,
-                "broadcast_minutes": broadcast_minutes, "opus": opus, "held_out_utterances": len(held),
+                "broadcast_minutes": broadcast_minutes, "opus": opus, "split": split, "held_out_utterances": len(held),
                 "used_utterances": sum(len(g) for g in groups), "broadcasts": broadcasts,
                 "terms": len(terms), "seen_terms": sum(r[1] == "seen" for r in terms)}
     (out / "manifest.json").write_text(json.dumps(manifest, indent=1, ensure_ascii=False) + "\n", encoding="utf-8")
