@@ -18,7 +18,7 @@ def run_demo(index: Path | None, csv_path: Path, out, err, demo_dir: Path = DEMO
     from .evaluation import read_reference
     from .export import write_csv
     from .indexing import index_archive
-    from .search import UNCALIBRATED_CENTRE, Searcher
+    from .search import Searcher
     from .spelling import check_term
 
     if not (demo_dir / "terms.txt").exists():
@@ -48,7 +48,7 @@ def run_demo(index: Path | None, csv_path: Path, out, err, demo_dir: Path = DEMO
         out.print("[bold]3. Scoring[/] against the demo's ground truth (demo_broadcasts/ground_truth.tsv)")
         ref = read_reference(demo_dir / "ground_truth.tsv")
         words = [check_term(t) for t in terms]
-        res = evaluate_hits(hits, ref, words, s.total_seconds, UNCALIBRATED_CENTRE)
+        res = evaluate_hits(hits, ref, words, s.total_seconds, s.uncalibrated_centre)
         # per-term values at the MTWV threshold: the demo has no calibration to choose a threshold with
         at_best = evaluate_hits(hits, ref, words, s.total_seconds, res["mtwv_threshold"])
         out.print(evaluation_table(at_best, "at the MTWV threshold"))

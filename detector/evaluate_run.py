@@ -7,7 +7,7 @@ from pathlib import Path
 
 from . import TrawlError
 from .evaluation import atwv, mtwv, precision_at_k, read_reference, recall_at_k, term_breakdown
-from .search import UNCALIBRATED_CENTRE, Searcher
+from .search import Searcher
 
 CANDIDATES_PER_TERM = 400
 
@@ -58,6 +58,6 @@ def evaluate(index_dir: Path, reference_path: Path, terms: list[str], models_dir
     if s.calibration is not None:
         res = evaluate_hits(hits, reference, terms, total, s.calibration.threshold, key="confidence")
     else:
-        res = evaluate_hits(hits, reference, terms, total, UNCALIBRATED_CENTRE, key="score")
+        res = evaluate_hits(hits, reference, terms, total, s.uncalibrated_centre, key="score")
     res["broadcasts"] = len(searched)
     return res

@@ -7,10 +7,14 @@ removes that offset before any threshold is applied.
 
 When the models have a letter head, a second look re-ranks the candidates: each candidate's
 stretch of audio (its window, LETTER_MARGIN either side) is aligned with the term's letters
-over the stored letter posteriors (detector/letters.py); the score becomes the embedding
-z-score plus `weight` times the alignment cost per letter, and the hit takes the aligned
-times. The weight is fitted on the dev split's broadcasts (exporters/fit_rescoring.py) and
-recorded in the model card.
+over the stored letter posteriors (detector/letters.py); each candidate's evidence is the
+embedding z-score plus `weight` times the alignment cost per letter, and the hit takes the
+aligned times. The score is then normalised per term by sum-to-one in the log domain
+(score = evidence - tau * log sum over the term's candidate pool of exp(evidence / tau);
+Mamou et al., Interspeech 2013, score normalisation for spoken term detection): a hit scores
+high when it stands out from every other stretch that resembles the term. The weight and tau
+are fitted on the dev split's broadcasts (exporters/fit_rescoring.py) and recorded in the
+model card, with the uncalibrated confidence's centre.
 """
 
 from __future__ import annotations
@@ -34,13 +38,16 @@ FEEDBACK_WEIGHT = 1.0
 NORMALISE = True  # score = z-score of the cosine against the archive's windows (else the cosine itself)
 LETTER_MARGIN = 0.25  # seconds of audio either side of a candidate window searched by the letter alignment
 LETTER_FLOOR = -8.0  # lowest alignment cost per letter counted (no alignment fits: this)
-DEFAULT_LETTER_WEIGHT = 1.0  # used when the model card records no fitted weight
+DEFAULT_LETTER_WEIGHT, DEFAULT_TAU = 1.0, 1.0  # used when the model card records no fitted values
+POOL_REGIONS = 200  # candidate stretches per term given the letter pass (the normalisation pool)
+POOL_WINDOWS = 1600  # nearest windows fetched, at least, to fill that pool after NMS
 UNCALIBRATED_CENTRE, UNCALIBRATED_SCALE = 7.0, 1.0  # centre: between the MTWV thresholds of the held-out benchmark (6.4 radio, 7.3 clean)
 
 
-def uncalibrated_confidence(score: np.ndarray) -> np.ndarray:
+def uncalibrated_confidence(score: np.ndarray, centre: float = UNCALIBRATED_CENTRE,
+                             scale: float = UNCALIBRATED_SCALE) -> np.ndarray:
     """A monotone map of score to [0, 1]. Not calibrated: it is no probability until `trawl calibrate`."""
-    return 1.0 / (1.0 + np.exp(-(np.asarray(score, np.float64) - UNCALIBRATED_CENTRE) / UNCALIBRATED_SCALE))
+    return 1.0 / (1.0 + np.exp(-(np.asarray(score, np.float64) - centre) / scale))
 
 
 def nms(starts: np.ndarray, ends: np.ndarray, groups: np.ndarray, scores: np.ndarray) -> np.ndarray:
@@ -102,7 +109,13 @@ class Searcher:
         pick = live if len(live) <= BACKGROUND_SAMPLE else rng.choice(live, BACKGROUND_SAMPLE, replace=False)
         self.background = self.index.vectors(np.sort(pick))
         self.letter_pass = self.models.has_letters and self.index.manifest.get("letters") == self.models.alphabet
-        self.letter_weight = float(self.models.rescoring.get("weight", DEFAULT_LETTER_WEIGHT))
+        r = self.models.rescoring
+        self.letter_weight = float(r.get("weight", DEFAULT_LETTER_WEIGHT))
+        self.tau = float(r.get("tau", DEFAULT_TAU))
+        # score at which the uncalibrated confidence is 0.5: the dev MTWV threshold (or, without letters, the embedding's)
+        self.uncalibrated_centre = float(r.get("centre", 0.0)) if self.letter_pass else UNCALIBRATED_CENTRE
+        self.uncalibrated_scale = float(r.get("scale", 1.0)) if self.letter_pass else UNCALIBRATED_SCALE
+        self._norms: dict = {}
 
     # ------------------------------------------------------------ queries
     def spelling_vector(self, term: str, use_map: bool = True) -> tuple[str, str, np.ndarray]:
@@ -156,8 +169,10 @@ class Searcher:
                       candidates: int | None = None) -> list[Hit]:
         """Hits for a query vector, best first. With `letters=0` (search by example) the letter pass is skipped."""
         v = (vector / np.linalg.norm(vector)).astype(np.float32)
+        n_letters = letter_count(term) if letters is None else letters
+        ids = self.letter_targets(term) if (self.letter_pass and n_letters) else []
         n = self.graph.get_current_count()
-        k = min(n, candidates or max(300, 40 * (top or 25)))
+        k = min(n, candidates or max(POOL_WINDOWS if ids else 300, 40 * (top or 25)))
         self.graph.set_ef(max(k + 50, 400))
         labels, dist = self.graph.knn_query(v[None], k=k, num_threads=1)
         labels, raw = labels[0].astype(np.int64), 1.0 - dist[0]
@@ -168,17 +183,16 @@ class Searcher:
         pos = self.offsets[bi] + wi
         starts, ends = window_times(self.flat_starts[pos], self.flat_kinds[pos], self.index.windows)
         order = nms(starts, ends, bi, score)
-        n_letters = letter_count(term) if letters is None else letters
-        ids = self.letter_targets(term) if (self.letter_pass and n_letters) else []
         aligned = np.zeros(len(score), bool)
         if ids:
-            cost, a_start, a_end = self.align(ids, bi[order], starts[order], ends[order])
-            ok = cost > -np.inf
-            score, raw, bi = score[order], raw[order], bi[order]
-            starts = np.where(ok, a_start, starts[order])
-            ends = np.where(ok, a_end, ends[order])
-            score = self.combine(score, cost, len(ids))
-            aligned = ok
+            pool = order[: max(POOL_REGIONS, 2 * (top or 100))]
+            cost, a_start, a_end = self.align(ids, bi[pool], starts[pool], ends[pool])
+            aligned = cost > -np.inf
+            raw, bi = raw[pool], bi[pool]
+            starts = np.where(aligned, a_start, starts[pool])
+            ends = np.where(aligned, a_end, ends[pool])
+            evidence = self.combine(score[pool], cost, len(ids))
+            score = evidence - self.normaliser(v, evidence[:POOL_REGIONS])
             order = nms(starts, ends, bi, score)
         if top:
             order = order[:top]
@@ -226,13 +240,27 @@ class Searcher:
         return cost, a_start, a_end
 
     def combine(self, z: np.ndarray, cost: np.ndarray, n_letters: int) -> np.ndarray:
-        """The second-look score: embedding z-score plus weight x alignment cost per letter (floored)."""
+        """A candidate's evidence: embedding z-score plus weight x alignment cost per letter (floored)."""
         per_letter = np.maximum(np.asarray(cost, np.float64) / max(1, n_letters), LETTER_FLOOR)
         return np.asarray(z, np.float64) + self.letter_weight * per_letter
 
+    def normaliser(self, v: np.ndarray, pool_evidence: np.ndarray | None) -> float:
+        """tau * log sum exp(evidence / tau) over the query's candidate pool (sum-to-one in the log domain).
+
+        Remembered per query vector, so that re-scoring a checked hit later uses the same constant
+        as the search that listed it."""
+        key = np.asarray(v, np.float32).tobytes()
+        if key not in self._norms:
+            if pool_evidence is None or not len(pool_evidence):
+                return 0.0
+            e = np.asarray(pool_evidence, np.float64) / self.tau
+            m = float(e.max())
+            self._norms[key] = self.tau * (m + float(np.log(np.exp(e - m).sum())))
+        return self._norms[key]
+
     def confidence(self, score, raw, letters):
         if self.calibration is None:
-            return uncalibrated_confidence(score), None
+            return uncalibrated_confidence(score, self.uncalibrated_centre, self.uncalibrated_scale), None
         from .calibration import hit_features
 
         X = hit_features(np.asarray(score), np.asarray(raw), np.full(len(score), letters))
@@ -274,8 +302,10 @@ class Searcher:
         z = float(self.score(np.float64(raw), v))
         ids = self.letter_targets(t) if self.letter_pass else []
         if ids:
+            if np.asarray(v, np.float32).tobytes() not in self._norms:
+                self.search_vector(t, v, top=10)  # fills the term's normaliser, as search computes it
             cost = self.align(ids, np.array([self.names.index(broadcast)]), np.array([start]), np.array([end]))[0]
-            z = float(self.combine(np.array([z]), cost, len(ids))[0])
+            z = float(self.combine(np.array([z]), cost, len(ids))[0]) - self.normaliser(v, None)
         return z, raw
 
     def score(self, raw: np.ndarray, v: np.ndarray) -> np.ndarray:

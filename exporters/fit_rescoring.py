@@ -5,9 +5,10 @@
 The dev utterances (those exporters/train.py keeps out of training for checkpoint selection)
 are joined into broadcasts, clean and radio-like, as the search benchmark builds its held-out
 ones; each is indexed with the models, every dev term of at least 6 letters is searched with
-each weight of a grid, and the weight with the best mean MTWV over the two conditions is
-written to the model card (key "rescoring"). The weight changes only how search ranks:
-indexes stay valid.
+each (weight, tau) of a grid, and the pair with the best mean MTWV over the two conditions is
+written to the model card (key "rescoring"), with the centre of the uncalibrated confidence
+(the mean of the two conditions' MTWV thresholds at that pair). These change only how search
+ranks and reports: indexes stay valid.
 """
 
 from __future__ import annotations
@@ -27,22 +28,22 @@ from detector.evaluate_run import evaluate_hits  # noqa: E402
 from detector.evaluation import read_reference  # noqa: E402
 from detector.indexing import index_archive  # noqa: E402
 from detector.models import load  # noqa: E402
-from detector.search import UNCALIBRATED_CENTRE, Searcher  # noqa: E402
+from detector.search import Searcher  # noqa: E402
 from exporters.export_onnx import _atomic_json  # noqa: E402
 
-GRID = (0.0, 0.5, 1.0, 2.0, 3.0, 5.0, 8.0, 12.0, 20.0, 40.0)
+GRID = tuple((w, tau) for w in (0.5, 1.0, 2.0, 3.0) for tau in (0.5, 1.0, 2.0))
 TOP = 100
 
 
 def measure(index_dir: Path, models_dir: str, reference, terms, weights) -> dict[float, dict]:
     s = Searcher(index_dir, models_dir)
     out = {}
-    for w in weights:
-        s.letter_weight = w
+    for w, tau in weights:
+        s.letter_weight, s.tau, s._norms = w, tau, {}
         hits = [h for t in terms for h in s.search(t, top=TOP)]
-        r = evaluate_hits(hits, reference, terms, s.total_seconds, UNCALIBRATED_CENTRE)
-        out[w] = {k: r[k] for k in ("mtwv", "mtwv_threshold", "p_at_10", "recall_at_100")}
-        print(json.dumps({"index": index_dir.name, "weight": w, **out[w]}), flush=True)
+        r = evaluate_hits(hits, reference, terms, s.total_seconds, 0.0)
+        out[(w, tau)] = {k: r[k] for k in ("mtwv", "mtwv_threshold", "p_at_10", "recall_at_100")}
+        print(json.dumps({"index": index_dir.name, "weight": w, "tau": tau, **out[(w, tau)]}), flush=True)
     return out
 
 
@@ -68,16 +69,19 @@ def main(argv=None):
             shutil.rmtree(idx)
         index_archive(bdir / cond, idx, models_dir)
         results[cond] = measure(idx, models_dir, reference, terms, GRID)
-    mean = {w: sum(results[c][w]["mtwv"] for c in results) / len(results) for w in GRID}
-    best = max(GRID, key=lambda w: (mean[w], -w))
-    print(f"{len(terms)} dev terms; mean MTWV by weight: " + ", ".join(f"{w:g}: {mean[w]:.3f}" for w in GRID))
-    print(f"chosen weight {best:g} (mean dev MTWV {mean[best]:.3f})")
+    mean = {g: sum(results[c][g]["mtwv"] for c in results) / len(results) for g in GRID}
+    best = max(GRID, key=lambda g: (round(mean[g], 4), -g[0], -g[1]))
+    thresholds = [results[c][best]["mtwv_threshold"] for c in results]
+    centre = round(sum(thresholds) / len(thresholds), 3)
+    print(f"{len(terms)} dev terms; mean MTWV by (weight, tau): " + ", ".join(f"{g}: {mean[g]:.3f}" for g in GRID))
+    print(f"chosen weight {best[0]:g}, tau {best[1]:g} (mean dev MTWV {mean[best]:.3f}); confidence centre {centre}")
     if not a.no_write:
         card_path = a.models / "card.json"
         card = json.loads(card_path.read_text(encoding="utf-8"))
-        card["rescoring"] = {"weight": best, "fitted_on": "dev-split broadcasts (clean and radio-like), "
-                             f"{len(terms)} terms of >= 6 letters", "command": "python -m exporters.fit_rescoring",
-                             "grid": {str(w): {c: results[c][w] for c in results} for w in GRID}}
+        card["rescoring"] = {"weight": best[0], "tau": best[1], "centre": centre, "scale": 1.0,
+                             "fitted_on": f"dev-split broadcasts (clean and radio-like), {len(terms)} terms of >= 6 letters",
+                             "command": "python -m exporters.fit_rescoring",
+                             "grid": {f"{w:g},{tau:g}": {c: results[c][(w, tau)] for c in results} for w, tau in GRID}}
         _atomic_json(card, card_path)
     return best, results
 

@@ -29,7 +29,8 @@ def render(card: dict) -> str:
     ]
     roles = {"frames": "frame encoder: log-mel frames -> 20 ms frame vectors (convolutional, bounded context)",
              "head": "span head: pooled span descriptor -> unit vector",
-             "spelling": "spelling encoder: NFD symbols -> unit vector"}
+             "spelling": "spelling encoder: NFD symbols -> unit vector",
+             "letters": "letter head: frame vectors + log-mel -> per-frame letter log-probabilities (CTC, blank first)"}
     for k, v in card["files"].items():
         lines.append(f"| `{v['path']}` | {roles.get(k, k)} | `{v['sha256'][:16]}…` |")
     lines += [
@@ -61,12 +62,39 @@ def render(card: dict) -> str:
         f"- Dev AP at the selected checkpoint (step {best.get('step', '?')}): acoustic {best.get('acoustic_ap', float('nan')):.3f}, "
         f"cross-view {best.get('crossview_ap', float('nan')):.3f} (last: step {last.get('step', '?')}).",
         "",
+    ] + letter_lines(card) + [
         "## Terms",
         "The corpus is a research corpus: credited here, not redistributed. Hits produced with these models are candidates "
         "to be verified by listening.",
         "",
     ]
     return "\n".join(lines)
+
+
+def letter_lines(card: dict) -> list[str]:
+    lt = card.get("letters")
+    if not lt:
+        return []
+    t = lt.get("training", {})
+    r = card.get("rescoring", {})
+    lines = [
+        "## Letter head and the second look in search",
+        f"- Classes: CTC blank + {len(lt['alphabet'])} base letters ({' '.join(lt['alphabet'])}); marks are not "
+        f"letters. Convolutional, ±{lt['receptive_frames']} frames beyond the frame encoder's context; the frame encoder "
+        "is frozen, so the index's vectors do not change when the head is retrained.",
+        f"- Trained with CTC (Graves et al., ICML 2006) on {t.get('train_utterances', '?')} utterances (the corpus's training "
+        f"split, clean + augmented, and the synthetic speech in {', '.join(t.get('synthetic_languages', [])) or 'no'} "
+        f"spelling rules): `{t.get('command', '')}`, {t.get('steps', '?')} steps, {t.get('wall_minutes', '?')} min. "
+        f"Greedy letter error rate on the {t.get('dev_utterances', '?')} dev utterances: {t.get('dev_letter_error', float('nan')):.3f} "
+        f"(untrained: {t.get('dev_letter_error_untrained', float('nan')):.2f}).",
+        "- Indexing stores each broadcast's posteriors, one byte per class per 20 ms frame (0.1 nat steps). Search aligns "
+        "a term's letters over each candidate's stretch (window ± 0.25 s) with a free start and end and ranks by "
+        "embedding z-score + weight × alignment cost per letter (floored at −8).",
+    ]
+    if r:
+        lines.append(f"- Weight {r['weight']:g}, fitted by `{r.get('command', '')}` on {r.get('fitted_on', '')}; mean dev MTWV "
+                     "by weight: " + ", ".join(f"{w}: {(v['clean']['mtwv'] + v['radio']['mtwv']) / 2:.3f}" for w, v in r.get("grid", {}).items()) + ".")
+    return lines + [""]
 
 
 def main(argv=None):
