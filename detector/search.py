@@ -116,6 +116,7 @@ class Searcher:
         self.uncalibrated_centre = float(r.get("centre", 0.0)) if self.letter_pass else UNCALIBRATED_CENTRE
         self.uncalibrated_scale = float(r.get("scale", 1.0)) if self.letter_pass else UNCALIBRATED_SCALE
         self._norms: dict = {}
+        self._pooled: dict = {}
 
     # ------------------------------------------------------------ queries
     def spelling_vector(self, term: str, use_map: bool = True) -> tuple[str, str, np.ndarray]:
@@ -296,14 +297,23 @@ class Searcher:
         return self.search_vector(t, v, top=top)
 
     def rescore(self, term: str, broadcast: str, start: float, end: float, use_map: bool = True) -> tuple[float, float]:
-        """(score, raw) of the best window for `term` overlapping (start, end) in `broadcast`."""
+        """(score, raw) of `term` at (start, end) in `broadcast`, as search scores it.
+
+        A stretch that search lists as a hit (overlap >= 0.3 of the union) takes that hit's score;
+        any other stretch is scored from the best window overlapping it, aligned over its own span."""
         t, v = self.query(term, use_map=use_map)
         raw = float(self.best_overlapping(v, broadcast, start, end) @ v)
         z = float(self.score(np.float64(raw), v))
         ids = self.letter_targets(t) if self.letter_pass else []
         if ids:
-            if np.asarray(v, np.float32).tobytes() not in self._norms:
-                self.search_vector(t, v, top=10)  # fills the term's normaliser, as search computes it
+            key = np.asarray(v, np.float32).tobytes()
+            if key not in self._pooled:  # the term's whole candidate pool, scored as search scores it
+                self._pooled[key] = self.search_vector(t, v, top=None)
+            listed = [((min(h.end, end) - max(h.start, start)) / (max(h.end, end) - min(h.start, start)), h)
+                      for h in self._pooled[key] if h.broadcast == broadcast and h.start < end and start < h.end]
+            if listed and max(listed, key=lambda x: x[0])[0] >= 0.3:  # a hit search lists: its own score
+                h = max(listed, key=lambda x: x[0])[1]
+                return h.score, h.raw
             cost = self.align(ids, np.array([self.names.index(broadcast)]), np.array([start]), np.array([end]))[0]
             z = float(self.combine(np.array([z]), cost, len(ids))[0]) - self.normaliser(v, None)
         return z, raw

@@ -1,6 +1,6 @@
 """Train the letter head (CTC over base letters) on top of the frozen, exported frame encoder.
 
-    python -m exporters.train_letters --synth runs/synth.pkl --minutes 25 --models models
+    python -m exporters.train_letters --synth runs/synth.pkl --minutes 30 --models models
     python -m exporters.train_letters --quick --models /tmp/m   # a minute, for the tests
 
 Search uses the head's per-frame letter posteriors to re-score the candidates the HNSW index

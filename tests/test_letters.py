@@ -115,3 +115,42 @@ def test_index_stores_letter_posteriors_per_broadcast(models, joined_broadcast, 
     # each frame is a distribution: the probabilities of the dequantised frame sum to about one
     p = np.exp(L.dequantise(np.asarray(post[:200]))).sum(axis=1)
     assert np.all((p > 0.7) & (p < 1.3))
+
+
+@pytest.fixture(scope="module")
+def searcher(models, joined_broadcast, tmp_path_factory):
+    from detector.indexing import index_archive
+    from detector.search import Searcher
+
+    folder, _, _ = joined_broadcast
+    idx = tmp_path_factory.mktemp("letters") / "idx"
+    index_archive(folder, idx)
+    return Searcher(idx)
+
+
+def test_sum_to_one_normaliser_hand_worked(searcher):
+    # tau = 1: evidence 0 and ln 3 share exp(0) + exp(ln 3) = 4, so the normaliser is ln 4 and the
+    # normalised scores are ln(1/4) and ln(3/4): shares that sum to one (Mamou et al. 2013).
+    searcher.tau = 1.0
+    v = np.ones(4, np.float32)
+    assert searcher.normaliser(v, np.array([0.0, np.log(3.0)])) == pytest.approx(np.log(4.0))
+    searcher.tau = 2.0  # tau = 2: 2 * ln(exp(0) + exp(ln 3 / 2)) = 2 * ln(1 + sqrt 3)
+    assert searcher.normaliser(-v, np.array([0.0, np.log(3.0)])) == pytest.approx(2 * np.log(1 + np.sqrt(3.0)))
+    searcher.tau = float(searcher.models.rescoring.get("tau", 1.0))
+
+
+def test_a_terms_hits_share_at_most_its_whole_mass(searcher, joined_broadcast):
+    _, _, words = joined_broadcast
+    term = max({w for _, _, w in words}, key=len)
+    hits = searcher.search(term, top=50)
+    assert hits and all(h.aligned for h in hits[:10])
+    assert sum(np.exp(h.score / searcher.tau) for h in hits) <= 1.0 + 1e-6
+
+
+def test_rescoring_a_listed_hit_gives_its_listed_score(searcher, joined_broadcast):
+    """calibrate re-scores checked rows from the index: a hit as search listed it must score the same."""
+    _, _, words = joined_broadcast
+    for term in sorted({w for _, _, w in words if len(w) >= 6}):
+        for h in searcher.search(term, top=3):
+            score, raw = searcher.rescore(term, h.broadcast, h.start, h.end)
+            assert (score, raw) == (pytest.approx(h.score, abs=1e-9), pytest.approx(h.raw, abs=1e-9)), (h, score)

@@ -38,16 +38,16 @@ from detector import audio  # noqa: E402
 from detector.features import SAMPLE_RATE  # noqa: E402
 from detector.indexing import embed_broadcast, find_audio, index_archive  # noqa: E402
 from detector.models import load  # noqa: E402
-from detector.search import Searcher  # noqa: E402
+from detector.search import POOL_WINDOWS, Searcher  # noqa: E402
 
 CONDITIONS = ("clean", "radio")
 RANDOM_QUERIES = 200
 CHUNK = 100_000  # random vectors generated (and regenerated for exact search) per block
 
 
-def search_settings(top: int, n: int) -> tuple[int, int]:
+def search_settings(top: int, n: int, letters: bool = True) -> tuple[int, int]:
     """(candidates k, ef) for `Searcher.search(term, top=top)` on n windows: mirrors search_vector."""
-    k = min(n, max(300, 40 * top))
+    k = min(n, max(POOL_WINDOWS if letters else 300, 40 * top))
     return k, max(k + 50, 400)
 
 
