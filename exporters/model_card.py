@@ -89,11 +89,12 @@ def letter_lines(card: dict) -> list[str]:
         f"(untrained: {t.get('dev_letter_error_untrained', float('nan')):.2f}).",
         "- Indexing stores each broadcast's posteriors, one byte per class per 20 ms frame (0.1 nat steps). Search aligns "
         "a term's letters over each candidate's stretch (window ± 0.25 s) with a free start and end and ranks by "
-        "embedding z-score + weight × alignment cost per letter (floored at −8).",
+        "embedding z-score + weight × alignment cost per letter (floored at −8), normalised per term by sum-to-one in the "
+        "log domain over the term's 200 best candidates (temperature tau; Mamou et al., Interspeech 2013).",
     ]
     if r:
-        lines.append(f"- Weight {r['weight']:g}, fitted by `{r.get('command', '')}` on {r.get('fitted_on', '')}; mean dev MTWV "
-                     "by weight: " + ", ".join(f"{w}: {(v['clean']['mtwv'] + v['radio']['mtwv']) / 2:.3f}" for w, v in r.get("grid", {}).items()) + ".")
+        lines.append(f"- Weight {r['weight']:g}, tau {r.get('tau', 1):g}, uncalibrated-confidence centre {r.get('centre', 0):g}, "
+                     f"fitted by `{r.get('command', '')}` on {r.get('fitted_on', '')}; mean dev MTWV by (weight, tau): " + ", ".join(f"{w}: {(v['clean']['mtwv'] + v['radio']['mtwv']) / 2:.3f}" for w, v in r.get("grid", {}).items()) + ".")
     return lines + [""]
 
 
