@@ -175,7 +175,7 @@ def search_cmd(
     example: List[Path] = typer.Option(None, "--example", help="Also use this recording (a WAV file holding just the word) as an example. Repeatable."),
     clips: Optional[Path] = typer.Option(None, "--clips", help="Write each hit as a short WAV (with 0.5 s around it) into this folder."),
     archive: Optional[Path] = typer.Option(None, "--archive", help="The archive folder, for --clips (default: the one recorded in the index)."),
-    no_refine: bool = typer.Option(False, "--no-refine", help="Keep the index's coarse hit times (faster; no audio is read)."),
+    no_refine: bool = typer.Option(False, "--no-refine", help="For searches by example: keep the index's coarse window times (no audio is read). Typed terms are always placed by aligning their letters."),
     models: Optional[str] = ModelsOpt,
 ):
     """Search an index for typed words; list the hits, best first.
