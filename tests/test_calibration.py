@@ -10,8 +10,6 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 from scipy.stats import norm
-from sklearn.isotonic import IsotonicRegression
-from sklearn.linear_model import LogisticRegression
 
 from detector import TrawlError
 from detector.calibration import (
@@ -33,6 +31,15 @@ from detector.calibration import (
 )
 from detector.hits import Hit
 
+
+
+def LogisticRegression(**kw):
+    """Reference library scikit-learn (the [test] extra); the tests that need it skip without it."""
+    return pytest.importorskip("sklearn.linear_model").LogisticRegression(**kw)
+
+
+def IsotonicRegression(**kw):
+    return pytest.importorskip("sklearn.isotonic").IsotonicRegression(**kw)
 
 def _sigmoid(z):
     return 1.0 / (1.0 + np.exp(-z))

@@ -7,7 +7,6 @@ from fractions import Fraction
 
 import numpy as np
 import pytest
-from sklearn.metrics import average_precision_score
 
 from detector import TrawlError
 from detector.evaluation import (
@@ -24,6 +23,11 @@ from detector.hits import Hit
 
 B = "news/1998-03-02.wav"
 
+
+
+def average_precision_score(labels, scores):
+    """Reference library scikit-learn (the [test] extra); the tests that need it skip without it."""
+    return pytest.importorskip("sklearn.metrics").average_precision_score(labels, scores)
 
 def hit(term, start, end, score, broadcast=B, confidence=0.5):
     return Hit(term=term, broadcast=broadcast, start=start, end=end, score=score, confidence=confidence)
