@@ -288,12 +288,9 @@ class Index:
         """Remove pending files of broadcasts whose commit never happened (a killed run)."""
         self._drop_stale_pending()
         self._drop_stale_letters()
-        for f in (self.root / "letters").glob(".*.tmp"):
-            f.unlink(missing_ok=True)
-        for f in self.root.glob(".*.tmp"):
-            f.unlink(missing_ok=True)
-        for f in (self.root / "pending").glob(".*.tmp"):
-            f.unlink(missing_ok=True)
+        for folder in (self.root, self.root / "pending", self.root / "letters"):
+            for f in folder.glob(".*.tmp"):
+                f.unlink(missing_ok=True)
 
     # --------------------------------------------------------------- lookups
     def window_table(self):

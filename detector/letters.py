@@ -84,12 +84,12 @@ def keyword_scores(regions: list[np.ndarray], ids: list[int]) -> tuple[np.ndarra
     first = np.full(C, -1, np.int64)
     last = np.full(C, -1, np.int64)
     ninf = np.float32(-np.inf)
+    fresh = np.full((C, S), ninf)  # a new alignment may begin, at no cost so far, in the first state
+    fresh[:, 0] = 0.0
     for t in range(T):
         stay = D
         adv = np.concatenate([np.full((C, 1), ninf), D], axis=1)[:, :S]
         jump = np.where(skip, np.concatenate([np.full((C, 2), ninf), D], axis=1)[:, :S], ninf)
-        fresh = np.full((C, S), ninf)
-        fresh[:, 0] = 0.0
         cands = np.stack([stay, adv, jump, fresh])
         k = cands.argmax(axis=0)
         prev_start = np.stack([start, np.concatenate([start[:, :1], start], axis=1)[:, :S],

@@ -70,10 +70,17 @@ def nms(starts: np.ndarray, ends: np.ndarray, groups: np.ndarray, scores: np.nda
 
 
 @dataclass
-class Query:
-    term: str  # what the user typed, NFC
-    spelled: str  # after spelling rules
-    vector: np.ndarray
+class Ranked:
+    """A query's candidate stretches: broadcast index, times, score, cosine, letter-aligned or not;
+    `order` ranks them (after NMS); `norm` is the per-term normaliser subtracted from the evidence."""
+    bi: np.ndarray
+    starts: np.ndarray
+    ends: np.ndarray
+    score: np.ndarray
+    raw: np.ndarray
+    aligned: np.ndarray
+    order: np.ndarray
+    norm: float
 
 
 class Searcher:
@@ -115,8 +122,7 @@ class Searcher:
         # score at which the uncalibrated confidence is 0.5: the dev MTWV threshold (or, without letters, the embedding's)
         self.uncalibrated_centre = float(r.get("centre", 0.0)) if self.letter_pass else UNCALIBRATED_CENTRE
         self.uncalibrated_scale = float(r.get("scale", 1.0)) if self.letter_pass else UNCALIBRATED_SCALE
-        self._norms: dict = {}
-        self._pooled: dict = {}
+        self._pooled: dict = {}  # (term, use_map) -> Ranked, for re-scoring checked rows
 
     # ------------------------------------------------------------ queries
     def spelling_vector(self, term: str, use_map: bool = True) -> tuple[str, str, np.ndarray]:
@@ -169,8 +175,19 @@ class Searcher:
     def search_vector(self, term: str, vector: np.ndarray, top: int | None = 10, letters: int | None = None,
                       candidates: int | None = None) -> list[Hit]:
         """Hits for a query vector, best first. With `letters=0` (search by example) the letter pass is skipped."""
-        v = (vector / np.linalg.norm(vector)).astype(np.float32)
         n_letters = letter_count(term) if letters is None else letters
+        r = self.rank(term, vector, top, n_letters, candidates)
+        order = r.order[:top] if top else r.order
+        conf, accepted = self.confidence(r.score[order], r.raw[order], n_letters)
+        return [Hit(term=term, broadcast=self.names[r.bi[i]], start=round(float(r.starts[i]), 3),
+                    end=round(float(r.ends[i]), 3), score=float(r.score[i]), confidence=float(conf[k]), rank=k + 1,
+                    accepted=None if accepted is None else bool(accepted[k]), raw=float(r.raw[i]), letters=n_letters,
+                    aligned=bool(r.aligned[i]))
+                for k, i in enumerate(order)]
+
+    def rank(self, term: str, vector: np.ndarray, top: int | None, n_letters: int, candidates: int | None = None) -> Ranked:
+        """The candidate stretches of a query, scored, with their ranking after NMS (see the module text)."""
+        v = (vector / np.linalg.norm(vector)).astype(np.float32)
         ids = self.letter_targets(term) if (self.letter_pass and n_letters) else []
         n = self.graph.get_current_count()
         k = min(n, candidates or max(POOL_WINDOWS if ids else 300, 40 * (top or 25)))
@@ -179,30 +196,21 @@ class Searcher:
         labels, raw = labels[0].astype(np.int64), 1.0 - dist[0]
         bi, wi = self.locate(labels)
         keep = bi >= 0
-        labels, raw, bi, wi = labels[keep], raw[keep], bi[keep], wi[keep]
+        raw, bi, wi = raw[keep], bi[keep], wi[keep]
         score = self.score(raw, v)
         pos = self.offsets[bi] + wi
         starts, ends = window_times(self.flat_starts[pos], self.flat_kinds[pos], self.index.windows)
         order = nms(starts, ends, bi, score)
-        aligned = np.zeros(len(score), bool)
-        if ids:
-            pool = order[: max(POOL_REGIONS, 2 * (top or 100))]
-            cost, a_start, a_end = self.align(ids, bi[pool], starts[pool], ends[pool])
-            aligned = cost > -np.inf
-            raw, bi = raw[pool], bi[pool]
-            starts = np.where(aligned, a_start, starts[pool])
-            ends = np.where(aligned, a_end, ends[pool])
-            evidence = self.combine(score[pool], cost, len(ids))
-            score = evidence - self.normaliser(v, evidence[:POOL_REGIONS])
-            order = nms(starts, ends, bi, score)
-        if top:
-            order = order[:top]
-        conf, accepted = self.confidence(score[order], raw[order], n_letters)
-        return [Hit(term=term, broadcast=self.names[bi[i]], start=round(float(starts[i]), 3), end=round(float(ends[i]), 3),
-                    score=float(score[i]), confidence=float(conf[r]), rank=r + 1,
-                    accepted=None if accepted is None else bool(accepted[r]), raw=float(raw[i]), letters=n_letters,
-                    aligned=bool(aligned[i]))
-                for r, i in enumerate(order)]
+        if not ids:
+            return Ranked(bi, starts, ends, score, raw, np.zeros(len(score), bool), order, 0.0)
+        pool = order[: max(POOL_REGIONS, 2 * (top or 100))]
+        cost, a_start, a_end = self.align(ids, bi[pool], starts[pool], ends[pool])
+        aligned = cost > -np.inf
+        starts, ends = np.where(aligned, a_start, starts[pool]), np.where(aligned, a_end, ends[pool])
+        evidence = self.combine(score[pool], cost, len(ids))
+        norm = self.normaliser(evidence[:POOL_REGIONS])
+        score = evidence - norm
+        return Ranked(bi[pool], starts, ends, score, raw[pool], aligned, nms(starts, ends, bi[pool], score), norm)
 
     # ------------------------------------------------------------ letter pass
     def letter_targets(self, term: str) -> list[int]:
@@ -245,19 +253,13 @@ class Searcher:
         per_letter = np.maximum(np.asarray(cost, np.float64) / max(1, n_letters), LETTER_FLOOR)
         return np.asarray(z, np.float64) + self.letter_weight * per_letter
 
-    def normaliser(self, v: np.ndarray, pool_evidence: np.ndarray | None) -> float:
-        """tau * log sum exp(evidence / tau) over the query's candidate pool (sum-to-one in the log domain).
+    def normaliser(self, pool_evidence: np.ndarray) -> float:
+        """tau * log sum exp(evidence / tau) over a query's candidate pool (sum-to-one in the log domain)."""
+        from scipy.special import logsumexp
 
-        Remembered per query vector, so that re-scoring a checked hit later uses the same constant
-        as the search that listed it."""
-        key = np.asarray(v, np.float32).tobytes()
-        if key not in self._norms:
-            if pool_evidence is None or not len(pool_evidence):
-                return 0.0
-            e = np.asarray(pool_evidence, np.float64) / self.tau
-            m = float(e.max())
-            self._norms[key] = self.tau * (m + float(np.log(np.exp(e - m).sum())))
-        return self._norms[key]
+        if not len(pool_evidence):
+            return 0.0
+        return self.tau * float(logsumexp(np.asarray(pool_evidence, np.float64) / self.tau))
 
     def confidence(self, score, raw, letters):
         if self.calibration is None:
@@ -302,20 +304,23 @@ class Searcher:
         A stretch that search lists as a hit (overlap >= 0.3 of the union) takes that hit's score;
         any other stretch is scored from the best window overlapping it, aligned over its own span."""
         t, v = self.query(term, use_map=use_map)
-        raw = float(self.best_overlapping(v, broadcast, start, end) @ v)
-        z = float(self.score(np.float64(raw), v))
         ids = self.letter_targets(t) if self.letter_pass else []
         if ids:
-            key = np.asarray(v, np.float32).tobytes()
+            key = (t, use_map)
             if key not in self._pooled:  # the term's whole candidate pool, scored as search scores it
-                self._pooled[key] = self.search_vector(t, v, top=None)
-            listed = [((min(h.end, end) - max(h.start, start)) / (max(h.end, end) - min(h.start, start)), h)
-                      for h in self._pooled[key] if h.broadcast == broadcast and h.start < end and start < h.end]
-            if listed and max(listed, key=lambda x: x[0])[0] >= 0.3:  # a hit search lists: its own score
-                h = max(listed, key=lambda x: x[0])[1]
-                return h.score, h.raw
+                self._pooled[key] = self.rank(t, v, None, len(ids))
+            r = self._pooled[key]
+            same = np.array([self.names[b] == broadcast for b in r.bi], bool)
+            inter = np.minimum(r.ends, end) - np.maximum(r.starts, start)
+            iou = np.where(same & (inter > 0), inter / (np.maximum(r.ends, end) - np.minimum(r.starts, start)), 0.0)
+            best = int(np.argmax(iou)) if len(iou) else -1
+            if best >= 0 and iou[best] >= 0.3:  # a stretch search lists: its own score
+                return float(r.score[best]), float(r.raw[best])
+        raw = float(self.best_overlapping(v, broadcast, start, end) @ v)
+        z = float(self.score(np.float64(raw), v))
+        if ids:
             cost = self.align(ids, np.array([self.names.index(broadcast)]), np.array([start]), np.array([end]))[0]
-            z = float(self.combine(np.array([z]), cost, len(ids))[0]) - self.normaliser(v, None)
+            z = float(self.combine(np.array([z]), cost, len(ids))[0]) - r.norm
         return z, raw
 
     def score(self, raw: np.ndarray, v: np.ndarray) -> np.ndarray:

@@ -35,4 +35,3 @@ def pairwise(a: list[list[str]], b: list[list[str]]) -> np.ndarray:
             out[rows] = np.take_along_axis(cur[:, rows, :], lb[None, None, :], axis=0)[0]
         prev = cur
     return out.astype(np.int32)
-

@@ -31,11 +31,11 @@ PROVENANCE = (
 )
 
 
-def _sha(path: Path) -> str:
+def file_sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def _atomic_json(obj, path: Path):
+def write_json(obj, path: Path):
     tmp = path.with_suffix(".tmp")
     tmp.write_text(json.dumps(obj, indent=1, ensure_ascii=False) + "\n", encoding="utf-8")
     os.replace(tmp, path)
@@ -76,7 +76,7 @@ def export(model, inventory: list[str], out: Path, training: dict) -> dict:
         "embedding_dim": head.net[-1].out_features,
         "symbols": inventory,
         "windows": WINDOWS,
-        "files": {k: {"path": v, "sha256": _sha(out / v)} for k, v in FILES.items()},
+        "files": {k: {"path": v, "sha256": file_sha256(out / v)} for k, v in FILES.items()},
         "training": training,
         "provenance": PROVENANCE,
         "metrics": {},
@@ -86,7 +86,7 @@ def export(model, inventory: list[str], out: Path, training: dict) -> dict:
         prev = json.loads(old.read_text(encoding="utf-8"))
         if prev.get("files") == card["files"]:
             card["metrics"] = prev.get("metrics", {})
-    _atomic_json(card, old)
+    write_json(card, old)
     return card
 
 

@@ -21,15 +21,14 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
-sys.path.insert(0, str(ROOT / "tests" / "benchmarks"))  # the broadcast builder the benchmarks share
 
-import make_heldout_broadcasts as builder  # noqa: E402
+from exporters import broadcasts as builder  # noqa: E402
 from detector.evaluate_run import evaluate_hits  # noqa: E402
 from detector.evaluation import read_reference  # noqa: E402
 from detector.indexing import index_archive  # noqa: E402
 from detector.models import load  # noqa: E402
 from detector.search import Searcher  # noqa: E402
-from exporters.export_onnx import _atomic_json  # noqa: E402
+from exporters.export_onnx import write_json  # noqa: E402
 
 GRID = tuple((w, tau) for w in (0.5, 1.0, 2.0, 3.0) for tau in (0.5, 1.0, 2.0))
 TOP = 100
@@ -39,7 +38,7 @@ def measure(index_dir: Path, models_dir: str, reference, terms, weights) -> dict
     s = Searcher(index_dir, models_dir)
     out = {}
     for w, tau in weights:
-        s.letter_weight, s.tau, s._norms = w, tau, {}
+        s.letter_weight, s.tau = w, tau
         hits = [h for t in terms for h in s.search(t, top=TOP)]
         r = evaluate_hits(hits, reference, terms, s.total_seconds, 0.0)
         out[(w, tau)] = {k: r[k] for k in ("mtwv", "mtwv_threshold", "p_at_10", "recall_at_100")}
@@ -82,7 +81,7 @@ def main(argv=None):
                              "fitted_on": f"dev-split broadcasts (clean and radio-like), {len(terms)} terms of >= 6 letters",
                              "command": "python -m exporters.fit_rescoring",
                              "grid": {f"{w:g},{tau:g}": {c: results[c][(w, tau)] for c in results} for w, tau in GRID}}
-        _atomic_json(card, card_path)
+        write_json(card, card_path)
     return best, results
 
 

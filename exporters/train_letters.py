@@ -88,7 +88,7 @@ def letter_error_rate(head, data) -> float:
 
 
 def export(head, models_dir: Path, alphabet: list[str], training: dict) -> dict:
-    from exporters.export_onnx import OPSET, _atomic_json, _sha
+    from exporters.export_onnx import OPSET, file_sha256, write_json
 
     path = models_dir / "letter_head.onnx"
     head.eval()
@@ -98,9 +98,9 @@ def export(head, models_dir: Path, alphabet: list[str], training: dict) -> dict:
                           dynamic_axes={"frames": {1: "time2"}, "logmel": {1: "time"}, "logp": {1: "time2"}}, dynamo=False)
     card_path = models_dir / "card.json"
     card = json.loads(card_path.read_text(encoding="utf-8"))
-    card["files"]["letters"] = {"path": path.name, "sha256": _sha(path)}
+    card["files"]["letters"] = {"path": path.name, "sha256": file_sha256(path)}
     card["letters"] = {"alphabet": alphabet, "receptive_frames": head.receptive_frames, "blank": 0, "training": training}
-    _atomic_json(card, card_path)
+    write_json(card, card_path)
     return card
 
 

@@ -30,7 +30,7 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import make_heldout_broadcasts as heldout  # noqa: E402
+from exporters import broadcasts as heldout  # noqa: E402
 from detector.evaluate_run import CANDIDATES_PER_TERM, evaluate_hits  # noqa: E402
 from detector.evaluation import match_hits, read_reference  # noqa: E402
 from detector.index_store import HNSW_EF_CONSTRUCTION, HNSW_M  # noqa: E402
@@ -269,7 +269,8 @@ def main(argv=None) -> None:
     ap.add_argument("--no-opus", action="store_true")
     a = ap.parse_args(argv)
     if a.quick:
-        minutes, bmin, max_terms, hours = a.minutes_total or 2.0, 2.0, a.max_terms or 5, a.hours_random or 1.0
+        minutes, bmin, max_terms = a.minutes_total or 2.0, 2.0, a.max_terms or 5
+        hours = 1.0 if a.hours_random is None else a.hours_random
     else:
         minutes, bmin, max_terms, hours = a.minutes_total, 5.0, a.max_terms, 100.0 if a.hours_random is None else a.hours_random
     work = a.work or ROOT / "runs" / ("bench_search_quick" if a.quick else "bench_search")

@@ -1,4 +1,5 @@
-"""Broadcasts built from held-out corpus utterances, for search benchmarks.
+"""Broadcasts built from corpus utterances the models never trained on, for the search benchmarks
+(held-out split) and for fitting search settings (dev split, exporters/fit_rescoring.py).
 
 The held-out utterances are those of ``split_by_transcript(load_corpus(corpus), 0.1)[1]``:
 never seen in training. They are shuffled (seeded) and joined, with pauses of 0.3-1.0 s,
@@ -19,7 +20,7 @@ out), else ``unseen``. Aligned words longer than MAX_WORD_SECONDS are alignment 
 type with such a token is left out of the terms (its timing cannot be trusted), while the
 reference keeps every word as transcribed.
 
-    python tests/benchmarks/make_heldout_broadcasts.py OUT [--minutes-total M] [--seed S]
+    python -m exporters.broadcasts OUT [--minutes-total M] [--seed S]
 """
 
 from __future__ import annotations
@@ -35,7 +36,7 @@ from pathlib import Path
 import numpy as np
 import soundfile as sf
 
-ROOT = Path(__file__).resolve().parents[2]
+ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from detector.spelling import letter_count  # noqa: E402
