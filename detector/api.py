@@ -3,6 +3,7 @@
     from detector import api
     vectors = api.embed_spellings(["kalumbero"])                    # (n, d), unit rows
     spans = api.embed_spans(samples, 44100, [(1.20, 1.75)])         # (n, d), unit rows
+    logp = api.letter_posteriors(samples, 44100)                    # (frames, 1 + letters), 20 ms frames
 
 A span's vector uses the audio from CONTEXT_SECONDS before it to CONTEXT_SECONDS after
 it and nothing beyond, so the same span gives the same vector in a short excerpt and in a
@@ -76,3 +77,18 @@ def embed_spans(samples: np.ndarray, sample_rate: int, spans: list[tuple[float, 
         a = np.minimum(a, b - 3)
         out[i] = m.head(pool(frames, prefix_sums(frames), a, b))[0]
     return out / np.linalg.norm(out, axis=1, keepdims=True)
+
+
+def letter_posteriors(samples: np.ndarray, sample_rate: int, models_dir: str | None = None) -> np.ndarray:
+    """Log-probabilities (frames, 1 + letters) of the letter head over a mono signal, one row per
+    20 ms frame, column 0 the CTC blank: what indexing stores (quantised) for the letter pass."""
+    from .letters import letter_logprobs
+
+    x = audio.as_mono(samples, sample_rate)
+    if sample_rate != SAMPLE_RATE:
+        x = audio.resample(x, sample_rate)
+    m = load(models_dir)
+    if not m.has_letters:
+        raise ValueError(f"the models in {m.dir} have no letter head")
+    feats = log_mel(x)
+    return letter_logprobs(m, feats, m.frames(feats))

@@ -319,20 +319,31 @@ def adapt_cmd(
 ):
     """Teach the query side your language's spelling habits from checked hits.
 
-    Learns a small map applied to every typed term; the archive is not re-indexed and its
-    vectors never change. The map is switched on only if it helps on terms held out from
-    fitting; `trawl search --no-adapt` ignores it.
+    Learns respelling rules (from what the model hears in the confirmed hits) and a small
+    map applied to every typed term's vector; the archive is not re-indexed and its vectors
+    never change. Each is switched on only if it helps on terms held out from fitting;
+    `trawl search --no-adapt` ignores both.
     """
     from .workflows import adapt
 
     rep = adapt(index, checked, models)
-    t = Table(title="Adaptation (held-out terms, cross-validated)", show_header=False)
-    t.add_row("mean average precision before", f"{rep.get('before_map', float('nan')):.3f}")
-    t.add_row("mean average precision after", f"{rep.get('after_map', float('nan')):.3f}")
-    t.add_row("switched on", "yes" if rep.get("enabled") else "no")
-    if rep.get("reason"):
-        t.add_row("why", str(rep["reason"]))
+
+    def cv(x):
+        return "-" if x is None else f"{x:.3f}"
+
+    rules = rep.get("rules", {})
+    t = Table(title="Adaptation (held-out terms, cross-validated MAP)")
+    for c in ("lever", "before", "after", "switched on", "why"):
+        t.add_column(c)
+    t.add_row("learned respelling rules", cv(rules.get("before_map")), cv(rules.get("after_map")),
+              "yes" if rules.get("enabled") else "no", str(rules.get("reason", "")))
+    t.add_row("query map", cv(rep.get("before_map")), cv(rep.get("after_map")),
+              "yes" if rep.get("enabled") else "no", str(rep.get("reason", "")))
     out.print(t)
+    if rules.get("learned"):
+        out.print("learned rules, in order (`trawl status` shows whether they are on):")
+        for line in rules["learned"]:
+            out.print(f"  {line}", highlight=False)
     if rep.get("recalibrated"):
         out.print("the calibration was refitted for the adapted queries")
 
@@ -438,7 +449,11 @@ def status_cmd(index: Path = IndexOpt):
     t.add_row("calibration", "yes" if idx.read_setting("calibration.json") else "no")
     t.add_row("spelling rules", "yes" if idx.read_text("rules.txt") else "no")
     qm = idx.read_setting("query_map.json")
-    t.add_row("adaptation", ("on" if qm.get("report", {}).get("enabled") else "off (did not help)") if qm else "no")
+    t.add_row("adaptation: query map", ("on" if qm.get("report", {}).get("enabled") else "off (did not help)") if qm else "no")
+    lr = idx.read_setting("learned_rules.json")
+    n_rules = len(lr.get("rules", "").splitlines()) if lr else 0
+    t.add_row("adaptation: learned rules", (f"on ({n_rules} rules)" if lr.get("enabled") else
+                                             f"off ({n_rules} rules, did not help)") if lr else "no")
     fails = idx.db.execute("select path, error from failures").fetchall()
     t.add_row("failed files", str(len(fails)))
     out.print(t)

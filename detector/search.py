@@ -88,6 +88,7 @@ class Searcher:
                  use_stored_rules: bool = True, feedback: int = FEEDBACK_HITS, normalise: bool = NORMALISE):
         from .adaptation import QueryMap
         from .calibration import Calibration
+        from .rule_learning import LEARNED_RULES_FILE, LearnedRules
         from .rules import parse_rules
 
         self.feedback, self.normalise = feedback, normalise
@@ -111,10 +112,14 @@ class Searcher:
         self.calibration = Calibration.from_dict(cal) if cal else None
         qm = self.index.read_setting("query_map.json") if adapt else None
         self.query_map = QueryMap.from_dict(qm) if qm else None
+        lr = self.index.read_setting(LEARNED_RULES_FILE) if adapt else None
+        learned = LearnedRules.from_dict(lr) if lr else None
+        self.learned_rules = learned.ruleset() if learned is not None and learned.enabled else None
         rng = np.random.default_rng(0)
         live = np.concatenate([np.arange(f, f + c) for f, c in zip(self.firsts, self.counts)])
         pick = live if len(live) <= BACKGROUND_SAMPLE else rng.choice(live, BACKGROUND_SAMPLE, replace=False)
-        self.background = self.index.vectors(np.sort(pick))
+        self.background_labels = np.sort(pick)
+        self.background = self.index.vectors(self.background_labels)
         self.letter_pass = self.models.has_letters and self.index.manifest.get("letters") == self.models.alphabet
         r = self.models.rescoring
         self.letter_weight = float(r.get("weight", DEFAULT_LETTER_WEIGHT))
@@ -132,6 +137,11 @@ class Searcher:
         if key not in self._spelled:  # checked samples and batches repeat terms: embed each once
             t = check_term(term)
             spelled = self.rules.apply(t) if self.rules else t
+            if self.learned_rules is not None:
+                try:
+                    spelled = self.learned_rules.apply(spelled)
+                except TrawlError:  # a learned rule would leave this term without letters: skip them
+                    pass
             v = embed_spellings([spelled])[0]
             if use_map and self.query_map is not None and self.query_map.enabled:
                 v = self.query_map.apply(v[None])[0]
@@ -151,6 +161,27 @@ class Searcher:
             raise TrawlError(f"no indexed window of {broadcast} overlaps {start:.2f}-{end:.2f} s")
         iou = inter[over] / (np.maximum(e[over], end) - np.minimum(s[over], start))
         return self.firsts[bi] + over, iou
+
+    def stretch_letters(self, broadcast: str, start: float, end: float) -> np.ndarray | None:
+        """Letter log-probs of a stretch of a broadcast (rule_learning.REGION_MARGIN either side)."""
+        from .rule_learning import stretch
+
+        post = self.broadcast_letters(self.names.index(broadcast)) if broadcast in self.names else None
+        if post is None:
+            return None
+        return dequantise(stretch(post, start, end, float(self.index.manifest["frame_seconds"])))
+
+    def window_letters(self, labels: np.ndarray) -> list[np.ndarray | None]:
+        """Letter log-probs over the stretch of each stored window (None without posteriors)."""
+        bi, wi = self.locate(np.asarray(labels, np.int64))
+        out = []
+        for b, w in zip(bi, wi):
+            if b < 0:
+                out.append(None)
+                continue
+            s, e = window_times(self.spans[b][0][w : w + 1], self.spans[b][1][w : w + 1], self.index.windows)
+            out.append(self.stretch_letters(self.names[b], float(s[0]), float(e[0])))
+        return out
 
     def window_vector(self, broadcast: str, start: float, end: float) -> np.ndarray:
         """The stored vector of the window that best covers (start, end) in a broadcast."""

@@ -17,11 +17,14 @@ from . import TrawlError
 from .calibration import Calibration, fit_calibration, hit_features, reliability_svg, suggest_sample
 from .checked import read_checked, sample_hash
 from .hits import Hit
+from .letters import dequantise
 from .search import Searcher
 from .spelling import letter_count, word_type
 
 CALIBRATION_FILE = "calibration.json"
 QUERY_MAP_FILE = "query_map.json"
+RULE_BACKGROUND = 400  # archive windows the learned rules are contrasted with
+ARCHIVE_FRAMES = 360_000  # 2 hours of 20 ms frames decoded for the foreign-spelling test
 
 
 @dataclass
@@ -79,31 +82,81 @@ def suggest(index_dir: Path, terms: list[str], n: int, per_term: int = 60, model
     return suggest_sample(pool, n, seed=seed)
 
 
+def archive_letters(searcher: Searcher, frame_budget: int = ARCHIVE_FRAMES) -> str:
+    """What the model hears in the archive: greedy letter decoding of broadcasts in a fixed
+    random order, up to `frame_budget` frames in all (for the learned rules' foreign-spelling test)."""
+    from .rule_learning import heard_letters
+
+    out, used = [], 0
+    for b in np.random.default_rng(0).permutation(len(searcher.names)):  # spread over the archive when cut short
+        post = searcher.broadcast_letters(int(b))
+        if post is None:
+            continue
+        take = np.asarray(post[: max(0, frame_budget - used)])
+        out.append(heard_letters(dequantise(take), searcher.models.alphabet))
+        used += len(take)
+        if used >= frame_budget:
+            break
+    return " ".join(out)
+
+
 def adapt(index_dir: Path, checked: Path, models_dir: str | None = None) -> dict:
-    """Fit the query-side map from a checked sample; store it when it helps held-out terms."""
+    """Learn the query side from a checked sample: respelling rules, then a map after the
+    spelling encoder; store each (versioned) and switch on those that help held-out terms."""
     from .adaptation import fit_query_map
+    from .api import embed_spellings
+    from .rule_learning import LEARNED_RULES_FILE, Evidence, fit_learned_rules
 
     searcher = Searcher(index_dir, models_dir, adapt=False)
     rows = [r for r in read_checked(Path(checked)) if r.verdict is not None]
     if not rows:
         raise TrawlError(f"{checked}: no row has a verdict (fill the verdict column with yes or no)")
-    q, a, y, terms = [], [], [], []
+    spelled, y, regions = [], [], []
     for r in rows:
-        t, _, v = searcher.spelling_vector(r.term, use_map=False)
+        t, sp, v = searcher.spelling_vector(r.term, use_map=False)
         try:
-            a.append(searcher.best_overlapping(v, r.broadcast, r.start, r.end))
+            searcher.overlapping(r.broadcast, r.start, r.end)
         except TrawlError as e:
             raise TrawlError(f"{checked}, line {r.line}: {e}") from None
-        q.append(v)
+        spelled.append(sp)
         y.append(1 if r.verdict else 0)
-        terms.append(t)
-    qmap, report = fit_query_map(np.array(q), np.array(a), y, terms)
+        regions.append(searcher.stretch_letters(r.broadcast, r.start, r.end))
+    report: dict = {}
+    respell = {w: w for w in set(spelled)}
+    if searcher.letter_pass and all(g is not None for g in regions) and any(y):
+        vectors = np.array([searcher.best_overlapping(searcher.spelling_vector(r.term, use_map=False)[2],
+                                                      r.broadcast, r.start, r.end) for r in rows])
+        bg = searcher.background_labels[:: max(1, len(searcher.background_labels) // RULE_BACKGROUND)][:RULE_BACKGROUND]
+        bg_regions = searcher.window_letters(bg)
+        keep = [i for i, g in enumerate(bg_regions) if g is not None and len(g)]
+        ev = Evidence(spelled, vectors, regions, np.array(y, bool), searcher.index.vectors(bg[keep]),
+                      [bg_regions[i] for i in keep], archive_letters(searcher), searcher.models.letter_table,
+                      searcher.models.alphabet, lambda ws: embed_spellings(ws, models_dir))
+        learned = fit_learned_rules(ev)
+        learned.sample_hash = sample_hash(checked)
+        searcher.index.write_setting(LEARNED_RULES_FILE, learned.to_dict())
+        report["rules"] = {**learned.report, "learned": learned.rules_text.splitlines()}
+        if learned.enabled:
+            rs = learned.ruleset()
+            for w in respell:
+                try:
+                    respell[w] = rs.apply(w)
+                except TrawlError:
+                    pass
+    else:
+        searcher.index.write_setting(LEARNED_RULES_FILE, None)
+        report["rules"] = {"enabled": False, "learned": [],
+                           "reason": "the index has no letter posteriors" if not searcher.letter_pass
+                           else "the checked sample has no confirmed hit"}
+    q = embed_spellings([respell[w] for w in spelled], models_dir)
+    a = np.array([searcher.best_overlapping(v, r.broadcast, r.start, r.end) for v, r in zip(q, rows)])
+    qmap, map_report = fit_query_map(q, a, y, spelled)
     qmap.sample_hash = sample_hash(checked)
     searcher.index.write_setting(QUERY_MAP_FILE, qmap.to_dict())
-    report = dict(report)
+    report.update(map_report)
     report["stored"] = True
     stored = searcher.index.read_setting(CALIBRATION_FILE)
-    if stored is not None and qmap.enabled:  # the confidence map follows the new query side
+    if stored is not None and (qmap.enabled or report["rules"].get("enabled")):  # the confidence map follows
         old = Calibration.from_dict(stored)
         sample = Path(old.report.get("checked_sample", checked))
         calibrate(index_dir, sample if sample.exists() else Path(checked), old.target_precision, models_dir=models_dir)

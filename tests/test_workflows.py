@@ -74,3 +74,31 @@ def test_adapt_never_changes_the_indexed_vectors(checked):
     assert digest(idx / "graph.hnsw") == before
     code, text = run("search", "mósωngώsώ", "--index", idx, "--no-adapt", "--all")
     assert code == 0, text
+
+
+@pytest.mark.slow
+def test_adapt_reports_both_levers_and_stores_the_learned_rules(checked):
+    idx, sample = checked
+    code, text = run("adapt", "--index", idx, "--checked", sample)
+    assert code == 0, text
+    assert "learned respelling rules" in text and "query map" in text
+    assert (idx / "learned_rules.json").exists()
+    code, text = run("status", "--index", idx)
+    assert code == 0 and "learned rules" in text
+
+
+@pytest.mark.slow
+def test_search_applies_stored_learned_rules_unless_told_not_to(checked):
+    from detector.rule_learning import LEARNED_RULES_FILE, LearnedRules
+
+    idx, _ = checked
+    s = Searcher(idx)
+    keep = s.index.read_setting(LEARNED_RULES_FILE)
+    try:
+        s.index.write_setting(LEARNED_RULES_FILE, LearnedRules("q -> k\n", True, {}).to_dict())
+        assert Searcher(idx).spelling_vector("qalaqa")[1] == "kalaka"
+        assert Searcher(idx, adapt=False).spelling_vector("qalaqa")[1] == "qalaqa"
+        s.index.write_setting(LEARNED_RULES_FILE, LearnedRules("q -> k\n", False, {}).to_dict())
+        assert Searcher(idx).spelling_vector("qalaqa")[1] == "qalaqa"  # stored but switched off
+    finally:
+        s.index.write_setting(LEARNED_RULES_FILE, keep)

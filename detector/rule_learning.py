@@ -1,0 +1,388 @@
+"""Learned respelling rules: query-side adaptation from checked hits, written as ordinary rules.
+
+An archivist's own spelling habits (a digraph for one sound, a letter the model reads as
+another) misplace a term's query. The checked sample says which stretches of audio a
+term really names; the letter posteriors stored in the index say which letters the
+model hears there. From the two we learn rewrite rules in the syntax of detector/rules.py,
+so that what was learned can be read, stored and edited like a hand-written rules file.
+
+1. Candidates. Each confirmed hit's stretch is decoded greedily (CTC best path) into the
+   model's letters and aligned to the term's spelling by edit distance (Levenshtein);
+   every pair of a substring of the spelling (1-3 characters) and the letters aligned to
+   it that differ is a candidate rule (phrase pairs consistent with an alignment, as in
+   phrase-based translation: Koehn et al., NAACL 2003).
+2. Evidence. A spelling's fit to a term's confirmed hits is measured in both views the
+   search uses, each as the log-probability of ranking each confirmed hit above a
+   background of other audio (the rejected hits and random archive windows):
+   cosine / TEMPERATURE for the spelling embedding against the hit's window vector, and
+   the keyword alignment cost per letter (detector/letters.py) for the letter view.
+   A candidate's gain is the change of that sum over the terms it respells.
+3. Selection. Greedy forward selection: the candidate with the largest gain is appended
+   while its gain exceeds MIN_GAIN and it helps at least MIN_SHARE of the terms it
+   changes; a rule must change at least MIN_SUPPORT confirmed terms, or one when its left
+   side is foreign to the archive (its rate in the archive's decoded letters is below
+   FOREIGN_RATIO of its rate in the sample's typed terms: such a spelling cannot be how
+   the model hears anything). Candidates are re-derived after each rule, so rules chain.
+4. Honesty. Cross-validation over terms (folds dealt by term): rules learned without a
+   fold's terms are applied to them, and each held-out term's confirmed hits are ranked
+   among its own rejected hits and the background by the summed evidence, before and
+   after. The rules are enabled only when they raise the held-out MAP.
+
+Pure functions and a small dataclass; `embed` (spellings -> unit vectors) is passed in.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from typing import Any, Callable, Sequence
+
+import numpy as np
+from scipy.special import logsumexp
+
+from . import TrawlError
+from .evaluation import average_precision
+from .letters import keyword_scores, letter_ids
+from .rules import Rule, RuleSet, parse_rules
+
+FORMAT_VERSION = 1
+LEARNED_RULES_FILE = "learned_rules.json"  # beside the index's other settings
+TEMPERATURE = 0.05  # cosine scale of the embedding view (its scores are cosines in [-1, 1])
+LETTER_FLOOR = -8.0  # per-letter cost floor, as in search
+MAX_SPAN = 3  # longest left side of a candidate, in characters
+MIN_SUPPORT = 2
+MIN_GAIN = 1.0  # nats, summed over the changed terms' confirmed hits
+MIN_SHARE = 0.6
+FOREIGN_RATIO = 0.2
+MAX_RULES = 20
+LETTER_SHORTLIST = 24  # candidates, best by the embedding view, whose letter view is computed
+REGION_MARGIN = 0.06  # seconds of audio either side of a checked hit's stretch
+FORBIDDEN = set("#^$") | {" ", "\t"}
+
+Embed = Callable[[list[str]], np.ndarray]
+
+
+# ------------------------------------------------------------------ letters heard, aligned to letters typed
+
+def heard_letters(logp: np.ndarray, alphabet: Sequence[str]) -> str:
+    """Greedy CTC decoding (best path, repeats merged, blanks dropped) of (T, 1 + letters) log-probs."""
+    best = np.asarray(logp).argmax(axis=1)
+    out, prev = [], -1
+    for b in best:
+        if b != prev and b != 0:
+            out.append(alphabet[b - 1])
+        prev = b
+    return "".join(out)
+
+
+def stretch(logp: np.ndarray, start: float, end: float, frame_seconds: float) -> np.ndarray:
+    """The rows of per-frame log-probs covering start..end seconds, REGION_MARGIN either side."""
+    lo = max(0, int(np.floor((start - REGION_MARGIN) / frame_seconds + 1e-9)))
+    hi = min(len(logp), int(np.ceil((end + REGION_MARGIN) / frame_seconds - 1e-9)))
+    return np.asarray(logp[lo:max(hi, lo + 1)], np.float32)
+
+
+def edit_alignment(a: str, b: str) -> list[tuple[int | None, int | None]]:
+    """One minimum-cost Levenshtein alignment of a to b: pairs (i, j), (i, None) deletions, (None, j) insertions."""
+    n, m = len(a), len(b)
+    d = np.zeros((n + 1, m + 1), np.int64)
+    d[:, 0], d[0, :] = np.arange(n + 1), np.arange(m + 1)
+    for i in range(1, n + 1):
+        for j in range(1, m + 1):
+            d[i, j] = min(d[i - 1, j] + 1, d[i, j - 1] + 1, d[i - 1, j - 1] + (a[i - 1] != b[j - 1]))
+    pairs: list[tuple[int | None, int | None]] = []
+    i, j = n, m
+    while i or j:
+        if i and j and d[i, j] == d[i - 1, j - 1] + (a[i - 1] != b[j - 1]):
+            pairs.append((i - 1, j - 1))
+            i, j = i - 1, j - 1
+        elif i and d[i, j] == d[i - 1, j] + 1:
+            pairs.append((i - 1, None))
+            i -= 1
+        else:
+            pairs.append((None, j - 1))
+            j -= 1
+    return pairs[::-1]
+
+
+def phrase_pairs(typed: str, heard: str, max_span: int = MAX_SPAN) -> set[tuple[str, str]]:
+    """(typed substring, heard substring) pairs consistent with an alignment, where the two differ.
+
+    Inserted heard letters belong to the typed character before them (or the first). A
+    typed span maps to the heard letters aligned to its characters when they are one
+    contiguous run (or none: a deletion)."""
+    if not typed:
+        return set()
+    owned: list[list[int]] = [[] for _ in typed]
+    last = 0
+    for i, j in edit_alignment(typed, heard):
+        if i is not None:
+            last = i
+        if j is not None:
+            owned[i if i is not None else last].append(j)
+    out = set()
+    for a in range(len(typed)):
+        for b in range(a + 1, min(len(typed), a + max_span) + 1):
+            js = sorted(j for k in range(a, b) for j in owned[k])
+            if js and js != list(range(js[0], js[-1] + 1)):
+                continue
+            src, tgt = typed[a:b], "".join(heard[j] for j in js)
+            if src != tgt and len(tgt) <= max_span and not (set(src + tgt) & FORBIDDEN) and not src[0].isspace():
+                out.add((src, tgt))
+    return out
+
+
+# ------------------------------------------------------------------ the checked sample, as evidence
+
+@dataclass
+class Evidence:
+    """A checked sample with the audio the search sees: vectors and letter posteriors.
+
+    terms[i]: the spelling of hit i's term (after the archivist's own rules); vectors[i]:
+    the hit's window vector; regions[i]: letter log-probs over the hit's stretch;
+    confirmed[i]: the verdict. background_*: other archive audio (random windows)."""
+
+    terms: list[str]
+    vectors: np.ndarray
+    regions: list[np.ndarray]
+    confirmed: np.ndarray
+    background_vectors: np.ndarray
+    background_regions: list[np.ndarray]
+    archive_letters: str  # the archive's decoded letters (a sample), for the foreign-spelling test
+    table: dict[str, int]
+    alphabet: list[str]
+    embed: Embed
+    _emb: dict = field(default_factory=dict, repr=False)
+    _let: dict = field(default_factory=dict, repr=False)
+
+    def __post_init__(self):
+        self.confirmed = np.asarray(self.confirmed, bool)
+        self.terms_arr = np.array(self.terms, dtype=object)
+
+    def spelled_vector(self, s: str) -> np.ndarray:
+        if s not in self._emb:
+            self._emb[s] = self.embed([s])[0]
+        return self._emb[s]
+
+    def indices(self, term: str, confirmed: bool | None = None) -> np.ndarray:
+        m = self.terms_arr == term
+        if confirmed is not None:
+            m &= self.confirmed == confirmed
+        return np.flatnonzero(m)
+
+    def negatives(self, term: str) -> np.ndarray:
+        """Rejected hits of any term and confirmed hits of other terms (indices into the sample)."""
+        return np.flatnonzero(~self.confirmed | (self.terms_arr != term))
+
+    def views(self, term: str, s: str, hits: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Embedding and letter evidence of spelling s for `hits` and for term's negatives + background."""
+        key = (term, s, tuple(hits.tolist()))
+        if key in self._let:
+            return self._let[key]
+        q = self.spelled_vector(s)
+        neg = self.negatives(term)
+        e_hit = self.vectors[hits] @ q / TEMPERATURE
+        e_neg = np.concatenate([self.vectors[neg] @ q, self.background_vectors @ q]) / TEMPERATURE
+        ids = letter_ids(s, self.table)
+        if ids:
+            regs = [self.regions[i] for i in hits] + [self.regions[i] for i in neg] + list(self.background_regions)
+            cost, _, _ = keyword_scores(regs, ids)
+            ev = np.maximum(cost / len(ids), LETTER_FLOOR)
+            l_hit, l_neg = ev[: len(hits)], ev[len(hits):]
+        else:
+            l_hit, l_neg = np.full(len(hits), LETTER_FLOOR), np.full(len(e_neg), LETTER_FLOOR)
+        self._let[key] = (e_hit, e_neg, l_hit, l_neg)
+        return self._let[key]
+
+    def embedding_fit(self, term: str, s: str) -> float:
+        hits = self.indices(term, True)
+        q = self.spelled_vector(s)
+        e_hit = self.vectors[hits] @ q / TEMPERATURE
+        e_neg = np.concatenate([self.vectors[self.negatives(term)] @ q, self.background_vectors @ q]) / TEMPERATURE
+        return _rank_loglik(e_hit, e_neg)
+
+    def letter_fit(self, term: str, s: str) -> float:
+        _, _, l_hit, l_neg = self.views(term, s, self.indices(term, True))
+        return _rank_loglik(l_hit, l_neg)
+
+
+def _rank_loglik(pos: np.ndarray, neg: np.ndarray) -> float:
+    """Sum over positives of log softmax(positive among itself and the negatives)."""
+    if not len(pos):
+        return 0.0
+    z = logsumexp(neg) if len(neg) else -np.inf
+    return float(np.sum(pos - np.logaddexp(pos, z)))
+
+
+def is_foreign(src: str, typed: str, archive: str) -> bool:
+    """True when src's letters are rarer in the archive's decoded letters than FOREIGN_RATIO times
+    their rate in the typed terms (or src has no letters: digits and marks are never heard)."""
+    core = _letters_only(src)
+    if not core:
+        return True
+    typed = _letters_only(typed, keep_spaces=True)
+    if not archive or not typed:
+        return False
+    return archive.count(core) / len(archive) < FOREIGN_RATIO * typed.count(core) / len(typed)
+
+
+def _letters_only(text: str, keep_spaces: bool = False) -> str:
+    return "".join(c for c in text if c.isalpha() or (keep_spaces and c.isspace()))
+
+
+# ------------------------------------------------------------------ greedy rule induction
+
+def _apply(rules: list[Rule], s: str) -> str | None:
+    """s respelled by rules; None when the rules would leave it without letters."""
+    try:
+        return RuleSet(tuple(rules)).apply(s) if rules else s
+    except TrawlError:
+        return None
+
+
+def learn_rules(ev: Evidence, terms: Sequence[str] | None = None, max_rules: int = MAX_RULES,
+                log: Callable[[str], None] | None = None) -> list[Rule]:
+    """Rules learned from the confirmed hits of `terms` (default: every term of the sample)."""
+    pool = sorted({t for t, c in zip(ev.terms, ev.confirmed) if c} & set(terms if terms is not None else ev.terms))
+    if not pool:
+        return []
+    typed = " ".join(sorted(set(terms if terms is not None else ev.terms)))
+    heard = {i: heard_letters(ev.regions[i], ev.alphabet) for t in pool for i in ev.indices(t, True)}
+    rules: list[Rule] = []
+    spelled = {t: t for t in pool}
+    for _ in range(max_rules):
+        support: dict[tuple[str, str], set[str]] = {}
+        for t in pool:
+            for i in ev.indices(t, True):
+                for pair in phrase_pairs(spelled[t], heard[i]):
+                    support.setdefault(pair, set()).add(t)
+        shortlist = []
+        for (src, tgt), _seen in support.items():
+            rule = Rule(src, tgt)
+            need = 1 if is_foreign(src, typed, ev.archive_letters) else MIN_SUPPORT
+            changed = {}
+            for t in pool:
+                new = _apply([rule], spelled[t])
+                if new is None:
+                    changed = {}
+                    break
+                if new != spelled[t]:
+                    changed[t] = new
+            if len(changed) < need:
+                continue
+            gain = np.array([ev.embedding_fit(t, new) - ev.embedding_fit(t, spelled[t]) for t, new in changed.items()])
+            if gain.sum() > 0:
+                shortlist.append((float(gain.sum()), rule, changed, gain))
+        shortlist.sort(key=lambda x: -x[0])
+        best = None
+        for _g, rule, changed, gain in shortlist[:LETTER_SHORTLIST]:
+            total = gain + np.array([ev.letter_fit(t, new) - ev.letter_fit(t, spelled[t]) for t, new in changed.items()])
+            if total.sum() > MIN_GAIN and np.mean(total > 0) >= MIN_SHARE and (best is None or total.sum() > best[0]):
+                best = (float(total.sum()), rule, changed)
+        if best is None:
+            break
+        rules.append(best[1])
+        spelled.update(best[2])
+        if log:
+            log(f"{best[1].to_text()}  (+{best[0]:.1f} over {len(best[2])} terms)")
+    return rules
+
+
+def held_out_ap(ev: Evidence, term: str, s: str) -> float | None:
+    """AP of the term's confirmed hits among its rejected hits and the background, by summed evidence."""
+    conf, rej = ev.indices(term, True), ev.indices(term, False)
+    if not len(conf):
+        return None
+    hits = np.concatenate([conf, rej])
+    e_hit, _, l_hit, _ = ev.views(term, s, hits)
+    q = ev.spelled_vector(s)
+    e_bg = ev.background_vectors @ q / TEMPERATURE
+    ids = letter_ids(s, ev.table)
+    if ids and len(ev.background_regions):
+        c, _, _ = keyword_scores(list(ev.background_regions), ids)
+        l_bg = np.maximum(c / len(ids), LETTER_FLOOR)
+    else:
+        l_bg = np.full(len(e_bg), LETTER_FLOOR)
+    scores = np.concatenate([e_hit + l_hit, e_bg + l_bg])
+    labels = np.concatenate([np.ones(len(conf)), np.zeros(len(rej) + len(e_bg))])
+    return average_precision(scores, labels)
+
+
+def cross_validate(ev: Evidence, folds: int = 5, seed: int = 0) -> tuple[list[float], list[float]]:
+    terms = sorted(set(ev.terms))
+    order = np.random.default_rng(seed).permutation(len(terms))
+    k = min(folds, len(terms))
+    fold_of = {terms[j]: pos % k for pos, j in enumerate(order)}
+    before, after = [], []
+    for f in range(k):
+        rules = learn_rules(ev, [t for t in terms if fold_of[t] != f])
+        for t in terms:
+            if fold_of[t] != f:
+                continue
+            b = held_out_ap(ev, t, t)
+            if b is None:
+                continue
+            new = _apply(rules, t) or t
+            before.append(b)
+            after.append(held_out_ap(ev, t, new) if new != t else b)
+    return before, after
+
+
+# ------------------------------------------------------------------ stored form
+
+@dataclass
+class LearnedRules:
+    rules_text: str
+    enabled: bool
+    report: dict
+    sample_hash: str = ""
+    created: str = ""
+    format_version: int = FORMAT_VERSION
+
+    def ruleset(self) -> RuleSet:
+        return parse_rules(self.rules_text, "rules learned by trawl adapt")
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"format_version": self.format_version, "kind": "learned_rules", "created": self.created,
+                "sample_hash": self.sample_hash, "enabled": self.enabled, "rules": self.rules_text,
+                "report": self.report}
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> "LearnedRules":
+        if d.get("kind") != "learned_rules" or int(d.get("format_version", 0)) != FORMAT_VERSION:
+            raise TrawlError("the learned rules stored in the index are of an unknown format; run trawl adapt again")
+        return cls(d["rules"], bool(d["enabled"]), d.get("report", {}), d.get("sample_hash", ""), d.get("created", ""))
+
+
+def fit_learned_rules(ev: Evidence, folds: int = 5, seed: int = 0) -> LearnedRules:
+    """Learn rules from the whole sample; enable them when cross-validated held-out MAP does not drop."""
+    rules = learn_rules(ev)
+    text = "".join(r.to_text() + "\n" for r in rules)
+    report: dict[str, Any] = {"rules": len(rules), "confirmed": int(ev.confirmed.sum()), "hits": len(ev.terms),
+                              "terms": len(set(ev.terms)), "folds": folds, "seed": seed}
+    if not rules:
+        report.update(enabled=False, before_map=None, after_map=None, terms_evaluated=0,
+                      reason="no rule improved the confirmed hits' evidence")
+        return LearnedRules(text, False, report, created=_now())
+    before, after = cross_validate(ev, folds, seed)
+    report["terms_evaluated"] = len(before)
+    if not before:
+        report.update(enabled=False, before_map=None, after_map=None,
+                      reason="no term has a confirmed hit to check the rules on")
+        return LearnedRules(text, False, report, created=_now())
+    b, a = float(np.mean(before)), float(np.mean(after))
+    enabled = a > b  # rules that change no held-out term are unverified, and stay off
+    report.update(before_map=b, after_map=a, gain=a - b, enabled=enabled,
+                  reason="held-out MAP improved" if enabled else
+                  f"held-out MAP {a:.3f} with the rules is not above {b:.3f} without them")
+    return LearnedRules(text, enabled, report, created=_now())
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+def sample_digest(terms: Sequence[str], confirmed: Sequence[bool]) -> str:
+    return hashlib.sha256(json.dumps([list(terms), [bool(c) for c in confirmed]]).encode()).hexdigest()

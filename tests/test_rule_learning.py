@@ -1,0 +1,136 @@
+"""Learned respelling rules (detector/rule_learning.py): alignment, candidates, learning, honesty.
+
+Edit alignments are checked against the classic worked example of the Levenshtein distance
+(kitten -> sitting, distance 3: Levenshtein 1966, as worked in most textbooks). Learning is
+checked on constructed samples whose letter posteriors spell the true word exactly, so the
+right rule is known by construction.
+"""
+
+import numpy as np
+import pytest
+
+from detector import api
+from detector.models import load
+from detector.rule_learning import (Evidence, LearnedRules, edit_alignment, fit_learned_rules, heard_letters,
+                                    is_foreign, learn_rules, phrase_pairs, stretch)
+
+
+def alignment_cost(a, b, pairs):
+    return sum(1 for i, j in pairs if i is None or j is None or a[i] != b[j])
+
+
+def test_edit_alignment_matches_the_worked_levenshtein_example():
+    pairs = edit_alignment("kitten", "sitting")
+    assert alignment_cost("kitten", "sitting", pairs) == 3  # k->s, e->i, +g
+    assert [i for i, _ in pairs if i is not None] == list(range(6))
+    assert [j for _, j in pairs if j is not None] == list(range(7))
+
+
+def test_edit_alignment_of_empty_strings():
+    assert edit_alignment("", "abc") == [(None, 0), (None, 1), (None, 2)]
+    assert edit_alignment("ab", "") == [(0, None), (1, None)]
+
+
+def test_phrase_pairs_find_digraphs_and_swaps():
+    assert ("gn", "ny") in phrase_pairs("gnama", "nyama")
+    assert ("c", "k") in phrase_pairs("ocondzi", "okondzi")
+    pairs = phrase_pairs("pehta", "pεta")
+    assert ("eh", "ε") in pairs
+    assert all(src != tgt for src, tgt in pairs)
+    assert phrase_pairs("mama", "mama") == set()
+
+
+def test_heard_letters_is_ctc_best_path():
+    # frames' best classes: a a blank a b b  (class 0 is the blank) -> "aab"
+    lp = np.log(np.full((6, 3), 0.1))
+    for t, c in enumerate([1, 1, 0, 1, 2, 2]):
+        lp[t, c] = np.log(0.8)
+    assert heard_letters(lp, ["a", "b"]) == "aab"
+
+
+def test_stretch_keeps_the_margin_inside_the_signal():
+    lp = np.zeros((100, 3))
+    assert len(stretch(lp, 0.0, 0.5, 0.02)) == 28  # 0 .. (0.5 + 0.06) / 0.02
+    assert len(stretch(lp, 1.9, 2.0, 0.02)) == 100 - 92  # from frame floor(1.84 / 0.02) = 92 to the end
+
+
+def test_foreign_spellings():
+    archive = "mama nyama kala bana"
+    assert is_foreign("j", "jama jele", archive)  # never heard in the archive
+    assert not is_foreign("a", "jama jele", archive)
+    assert is_foreign(":", "ma:na", archive)  # no letters: never heard
+
+
+# ------------------------------------------------------------------ learning on constructed samples
+
+def spell_posteriors(word, table, frames_per_letter=3):
+    """Log-probs whose best path spells the word exactly: each letter for a few frames, blanks between."""
+    seq = []
+    for c in word:
+        seq += [table[c]] * frames_per_letter + [0]
+    lp = np.full((len(seq) + 2, len(table) + 1), np.log(0.01))
+    lp[0, 0] = lp[-1, 0] = np.log(0.9)
+    for t, c in enumerate(seq, start=1):
+        lp[t, c] = np.log(0.9)
+    return lp.astype(np.float32)
+
+
+WORDS = ["kalama", "makeko", "bokina", "tekimo", "likumo", "sakelo", "nokali", "dikota", "mokubi", "kotami",
+         "pakilo", "lokena", "bakuna", "tikolo", "mekilo", "kobina"]
+OTHERS = ["malima", "donata", "bilosa", "timaba", "nasuli", "pelito", "modila", "selumi", "ranobe", "lutina"]
+
+
+def constructed_evidence(typed_of, confirmed_words):
+    """A checked sample: each confirmed word once (its audio is exactly the word) and one rejected
+    hit (the word with k spoken as g); background: other words. The 'audio vectors' are the spelling
+    encoder's vectors of the true spellings, so the embedding view agrees with the letters."""
+    m = load()
+    table, alphabet = m.letter_table, m.alphabet
+    terms, vecs, regions, conf = [], [], [], []
+    near = [w.replace("k", "g") for w in WORDS]  # near-homophones: the hits a wrong spelling confuses
+    true_vec = dict(zip(WORDS + OTHERS + near, api.embed_spellings(WORDS + OTHERS + near)))
+    for w in confirmed_words:
+        for audio, ok in ((w, True), (w.replace("k", "g"), False)):
+            terms.append(typed_of(w))
+            vecs.append(true_vec[audio])
+            regions.append(spell_posteriors(audio, table))
+            conf.append(ok)
+    bg = OTHERS + [w for w in WORDS if w not in confirmed_words]
+    return Evidence(terms, np.array(vecs), regions, np.array(conf), np.array([true_vec[w] for w in bg]),
+                    [spell_posteriors(w, table) for w in bg], " ".join(OTHERS + WORDS), table, alphabet,
+                    api.embed_spellings)
+
+
+def q_for_k(w):
+    return w.replace("k", "q")
+
+
+def test_a_consistent_letter_swap_is_learned():
+    ev = constructed_evidence(q_for_k, WORDS[:10])
+    rules = learn_rules(ev)
+    assert [r.to_text() for r in rules][:1] == ["q -> k"]
+
+
+def test_learned_rules_are_switched_on_when_they_help_held_out_terms():
+    ev = constructed_evidence(q_for_k, WORDS[:12])
+    learned = fit_learned_rules(ev, folds=4)
+    assert learned.enabled, learned.report
+    assert learned.report["after_map"] > learned.report["before_map"]
+    rs = learned.ruleset()
+    assert [rs.apply(q_for_k(w)) for w in WORDS[12:]] == WORDS[12:]  # terms never checked come out right
+
+
+def test_nothing_is_learned_when_the_typed_spelling_is_what_is_heard():
+    ev = constructed_evidence(lambda w: w, WORDS[:10])
+    learned = fit_learned_rules(ev, folds=4)
+    assert learned.rules_text == "" and not learned.enabled
+
+
+def test_learned_rules_round_trip_and_refuse_unknown_formats():
+    ev = constructed_evidence(q_for_k, WORDS[:10])
+    learned = fit_learned_rules(ev, folds=4)
+    again = LearnedRules.from_dict(learned.to_dict())
+    assert again.ruleset().to_text() == learned.ruleset().to_text() and again.enabled == learned.enabled
+    bad = dict(learned.to_dict(), format_version=99)
+    with pytest.raises(Exception, match="unknown format"):
+        LearnedRules.from_dict(bad)
