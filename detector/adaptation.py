@@ -282,9 +282,13 @@ def _cosines(m: np.ndarray, q: np.ndarray, a: np.ndarray) -> np.ndarray:
 
 
 def _cross_validate(
-    s: _Sample, folds: int, seed: int, fit: dict[str, Any]
+    s: _Sample, folds: int, seed: int, fit: dict[str, Any], background: np.ndarray | None = None
 ) -> tuple[list[float], list[float]]:
-    """Held-out AP per evaluable term, before and after, with folds dealt over terms."""
+    """Held-out AP per evaluable term, before and after, with folds dealt over terms.
+
+    Without ``background``, a term's checked hits are ranked among themselves (terms with
+    both verdicts); with it (unit rows of other archive windows), its confirmed hits are
+    ranked among its rejected hits and the background (terms with a confirmed hit)."""
     unique = sorted(set(s.terms))
     order = np.random.default_rng(seed).permutation(len(unique))
     k = min(folds, len(unique))
@@ -300,6 +304,14 @@ def _cross_validate(
                 continue
             idx = np.nonzero(terms == t)[0]
             y = s.y[idx]
+            if background is not None and y.any():
+                q0 = s.q[idx[0]]
+                q1 = m @ q0
+                q1 = q1 / max(np.linalg.norm(q1), _TINY)
+                labels = np.concatenate([y, np.zeros(len(background))])
+                before.append(average_precision(np.concatenate([s.a[idx], background]) @ q0, labels))
+                after.append(average_precision(np.concatenate([s.a[idx], background]) @ q1, labels))
+                continue
             if y.all() or not y.any():
                 continue  # AP is 1 or undefined whatever the map: no information
             before.append(average_precision(np.sum(s.q[idx] * s.a[idx], axis=1), y))
@@ -317,6 +329,7 @@ def fit_query_map(
     seed: int = 0,
     *,
     min_gain: float = 0.0,
+    background: np.ndarray | None = None,
     temperature: float = 0.1,
     pull: float = 1.0,
     steps: int = 300,
@@ -331,6 +344,8 @@ def fit_query_map(
     data terms are means, so ``lam`` is a fixed strength relative to them; the
     default 0.03 kept the loss under 0.01 of held-out MAP on constructed samples
     without any mismatch while still undoing most of a rotation of the queries.
+    ``background``: optional (m, d) vectors of other archive windows; the held-out check
+    then ranks each term's confirmed hits among its rejected hits and these, as search does.
     """
     if lam < 0 or temperature <= 0 or pull < 0 or steps < 1 or lr <= 0:
         raise TrawlError("fit_query_map needs lam >= 0, pull >= 0, temperature > 0, steps >= 1, lr > 0")
@@ -375,7 +390,8 @@ def fit_query_map(
             "one hit marked 'yes'"
         )
 
-    before, after = _cross_validate(s, folds, seed, fit)
+    bg = None if background is None else _unit_rows(np.array(background, dtype=np.float64), "background")
+    before, after = _cross_validate(s, folds, seed, fit, bg)
     m, value = _fit_matrix(s, **fit)
     report["terms_evaluated"] = len(before)
     report["final_objective"] = value

@@ -150,7 +150,7 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None) -> dict
                            else "the checked sample has no confirmed hit"}
     q = embed_spellings([respell[w] for w in spelled], models_dir)
     a = np.array([searcher.best_overlapping(v, r.broadcast, r.start, r.end) for v, r in zip(q, rows)])
-    qmap, map_report = fit_query_map(q, a, y, spelled)
+    qmap, map_report = fit_query_map(q, a, y, spelled, background=searcher.background[:: max(1, len(searcher.background) // RULE_BACKGROUND)])
     qmap.sample_hash = sample_hash(checked)
     searcher.index.write_setting(QUERY_MAP_FILE, qmap.to_dict())
     report.update(map_report)

@@ -226,3 +226,14 @@ def test_tiny_and_malformed_samples_are_refused():
         fit_query_map(q, zero, y, terms)
     with pytest.raises(TrawlError, match="folds"):
         fit_query_map(q, a, y, terms, folds=1)
+
+
+def test_held_out_check_against_background_switches_on_a_map_that_undoes_a_rotation(rotated):
+    """With background windows, held-out terms' confirmed hits are ranked among their rejected
+    hits and the background; a map that undoes the queries' rotation must win there too."""
+    rng = np.random.default_rng(11)
+    background = _unit(rng.normal(size=(200, rotated[0].shape[1])))
+    qm, report = fit_query_map(*rotated, folds=4, seed=0, background=background)
+    assert report["terms_evaluated"] == len(set(rotated[3]))  # every term has a confirmed hit
+    assert report["after_map"] > report["before_map"] and qm.enabled
+

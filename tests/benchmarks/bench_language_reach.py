@@ -218,7 +218,8 @@ def adapt(tokens: Tokens, spelling_of: dict[str, str], types: list[str], n_hits:
     q = api.embed_spellings([respelled[w] for w in ev.terms])
     b_used = api.embed_spellings(b_rules if use_rules else b_spelled)
     try:
-        qmap, report = fit_query_map(q, ev.vectors, ev.confirmed.astype(int), ev.terms, seed=seed)
+        qmap, report = fit_query_map(q, ev.vectors, ev.confirmed.astype(int), ev.terms, seed=seed,
+                                     background=ev.background_vectors)
     except TrawlError as exc:  # too few hits, terms or confirmations: search keeps the identity
         out["map"] = {"refused": str(exc), "enabled": False}
         out["after_used"] = crossview(tokens, b_used, b_types)
