@@ -315,6 +315,8 @@ def calibrate_cmd(
 def adapt_cmd(
     index: Path = IndexOpt,
     checked: Path = typer.Option(..., "--checked", help="A checked sample (hits CSV with the verdict column filled)."),
+    aligned: Optional[Path] = typer.Option(None, "--aligned", help="Also learn from a word-aligned corpus folder "
+                                           "(utterances.tsv, words.tsv, audio/), e.g. a few transcribed recordings."),
     models: Optional[str] = ModelsOpt,
 ):
     """Teach the query side your language's spelling habits from checked hits.
@@ -326,7 +328,7 @@ def adapt_cmd(
     """
     from .workflows import adapt
 
-    rep = adapt(index, checked, models)
+    rep = adapt(index, checked, models, aligned=aligned)
 
     def cv(x):
         return "-" if x is None else f"{x:.3f}"
@@ -340,6 +342,8 @@ def adapt_cmd(
     t.add_row("query map", cv(rep.get("before_map")), cv(rep.get("after_map")),
               "yes" if rep.get("enabled") else "no", str(rep.get("reason", "")))
     out.print(t)
+    if rep.get("aligned_words"):
+        out.print(f"learned from {rep['checked_hits']} checked hits and {rep['aligned_words']} aligned words")
     if rules.get("learned"):
         out.print("learned rules, in order (`trawl status` shows whether they are on):")
         for line in rules["learned"]:

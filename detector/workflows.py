@@ -17,13 +17,14 @@ from . import TrawlError
 from .calibration import Calibration, fit_calibration, hit_features, reliability_svg, suggest_sample
 from .checked import read_checked, sample_hash
 from .hits import Hit
-from .letters import dequantise
+from .letters import dequantise, quantise
 from .search import Searcher
 from .spelling import letter_count, word_type
 
 CALIBRATION_FILE = "calibration.json"
 QUERY_MAP_FILE = "query_map.json"
 RULE_BACKGROUND = 400  # archive windows the learned rules are contrasted with
+MAX_ALIGNED_WORDS = 3000  # aligned-corpus words used at most (the rest would add time, not evidence)
 ARCHIVE_FRAMES = 360_000  # 2 hours of 20 ms frames decoded for the foreign-spelling test
 
 
@@ -100,9 +101,40 @@ def archive_letters(searcher: Searcher, frame_budget: int = ARCHIVE_FRAMES) -> s
     return " ".join(out)
 
 
-def adapt(index_dir: Path, checked: Path, models_dir: str | None = None) -> dict:
-    """Learn the query side from a checked sample: respelling rules, then a map after the
-    spelling encoder; store each (versioned) and switch on those that help held-out terms."""
+def aligned_examples(searcher: Searcher, corpus: Path, max_words: int = MAX_ALIGNED_WORDS):
+    """Spellings (after the archivist's rules), span vectors and letter stretches of the aligned
+    words of a corpus in the shared layout, up to `max_words` words."""
+    from . import audio
+    from .aligned import read_aligned
+    from .api import embed_spans, letter_posteriors
+    from .features import SAMPLE_RATE
+    from .rule_learning import stretch
+
+    spelled, vectors, regions = [], [], []
+    fs = float(searcher.index.manifest["frame_seconds"])
+    for rec in read_aligned(corpus):
+        if len(spelled) >= max_words:
+            break
+        try:
+            x = audio.load(rec.audio)
+        except TrawlError as e:
+            raise TrawlError(f"aligned corpus: {e}") from None
+        words = [(s, min(e, len(x) / SAMPLE_RATE), w) for s, e, w in rec.words if e - s >= 0.06 and s < len(x) / SAMPLE_RATE - 0.06]
+        if not words:
+            continue
+        vectors.append(embed_spans(x, SAMPLE_RATE, [(s, e) for s, e, _ in words], searcher.models.dir))
+        logp = dequantise(quantise(letter_posteriors(x, SAMPLE_RATE, searcher.models.dir)))  # as the index stores them
+        for s, e, w in words:
+            spelled.append(searcher.spelling_vector(w, use_map=False)[1])
+            regions.append(stretch(logp, s, e, fs))
+    n = min(len(spelled), max_words)
+    return spelled[:n], (np.concatenate(vectors)[:n] if vectors else np.zeros((0, searcher.models.dim), np.float32)), regions[:n]
+
+
+def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned: Path | None = None) -> dict:
+    """Learn the query side from a checked sample (and optionally an aligned corpus): respelling
+    rules, then a map after the spelling encoder; store each (versioned) and switch on those
+    that help held-out terms."""
     from .adaptation import fit_query_map
     from .api import embed_spellings
     from .rule_learning import LEARNED_RULES_FILE, Evidence, fit_learned_rules
@@ -113,25 +145,35 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None) -> dict
         raise TrawlError(f"{checked}: no row has a verdict (fill the verdict column with yes or no)")
     spelled, y, regions = [], [], []
     for r in rows:
-        t, sp, v = searcher.spelling_vector(r.term, use_map=False)
         try:
             searcher.overlapping(r.broadcast, r.start, r.end)
         except TrawlError as e:
             raise TrawlError(f"{checked}, line {r.line}: {e}") from None
-        spelled.append(sp)
+        spelled.append(searcher.spelling_vector(r.term, use_map=False)[1])
         y.append(1 if r.verdict else 0)
         regions.append(searcher.stretch_letters(r.broadcast, r.start, r.end))
-    report: dict = {}
+    n_checked = len(rows)
+    extra_spelled, extra_vectors, extra_regions = (aligned_examples(searcher, Path(aligned)) if aligned
+                                                   else ([], np.zeros((0, searcher.models.dim), np.float32), []))
+    spelled += extra_spelled
+    y += [1] * len(extra_spelled)
+    regions += extra_regions
+
+    def hit_vectors(queries: np.ndarray) -> np.ndarray:
+        """Per example: the indexed window closest to its query (checked rows), its span vector (aligned words)."""
+        own = [searcher.best_overlapping(v, r.broadcast, r.start, r.end) for v, r in zip(queries, rows)]
+        return np.concatenate([np.array(own, np.float32).reshape(-1, searcher.models.dim), extra_vectors])
+
+    report: dict = {"checked_hits": n_checked, "aligned_words": len(extra_spelled)}
     respell = {w: w for w in set(spelled)}
+    bg = searcher.background_labels[:: max(1, len(searcher.background_labels) // RULE_BACKGROUND)][:RULE_BACKGROUND]
     if searcher.letter_pass and all(g is not None for g in regions) and any(y):
-        vectors = np.array([searcher.best_overlapping(searcher.spelling_vector(r.term, use_map=False)[2],
-                                                      r.broadcast, r.start, r.end) for r in rows])
-        bg = searcher.background_labels[:: max(1, len(searcher.background_labels) // RULE_BACKGROUND)][:RULE_BACKGROUND]
         bg_regions = searcher.window_letters(bg)
         keep = [i for i, g in enumerate(bg_regions) if g is not None and len(g)]
-        ev = Evidence(spelled, vectors, regions, np.array(y, bool), searcher.index.vectors(bg[keep]),
-                      [bg_regions[i] for i in keep], archive_letters(searcher), searcher.models.letter_table,
-                      searcher.models.alphabet, lambda ws: embed_spellings(ws, models_dir))
+        ev = Evidence(spelled, hit_vectors(embed_spellings(spelled, models_dir)), regions, np.array(y, bool),
+                      searcher.index.vectors(bg[keep]), [bg_regions[i] for i in keep], archive_letters(searcher),
+                      searcher.models.letter_table, searcher.models.alphabet,
+                      lambda ws: embed_spellings(ws, models_dir))
         learned = fit_learned_rules(ev)
         learned.sample_hash = sample_hash(checked)
         searcher.index.write_setting(LEARNED_RULES_FILE, learned.to_dict())
@@ -149,8 +191,7 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None) -> dict
                            "reason": "the index has no letter posteriors" if not searcher.letter_pass
                            else "the checked sample has no confirmed hit"}
     q = embed_spellings([respell[w] for w in spelled], models_dir)
-    a = np.array([searcher.best_overlapping(v, r.broadcast, r.start, r.end) for v, r in zip(q, rows)])
-    qmap, map_report = fit_query_map(q, a, y, spelled, background=searcher.background[:: max(1, len(searcher.background) // RULE_BACKGROUND)])
+    qmap, map_report = fit_query_map(q, hit_vectors(q), y, spelled, background=searcher.index.vectors(bg))
     qmap.sample_hash = sample_hash(checked)
     searcher.index.write_setting(QUERY_MAP_FILE, qmap.to_dict())
     report.update(map_report)

@@ -102,3 +102,47 @@ def test_search_applies_stored_learned_rules_unless_told_not_to(checked):
         assert Searcher(idx).spelling_vector("qalaqa")[1] == "qalaqa"  # stored but switched off
     finally:
         s.index.write_setting(LEARNED_RULES_FILE, keep)
+
+
+def small_aligned_corpus(corpus, folder, utts):
+    """A word-aligned corpus in the shared layout: a few of the shared corpus's utterances, copied."""
+    import shutil
+
+    (folder / "audio").mkdir(parents=True)
+    head, *lines = (corpus / "utterances.tsv").read_text(encoding="utf-8").splitlines()
+    (folder / "utterances.tsv").write_text("\n".join([head] + [l for l in lines if l.split("\t")[0] in utts]) + "\n",
+                                           encoding="utf-8")
+    head, *lines = (corpus / "words.tsv").read_text(encoding="utf-8").splitlines()
+    (folder / "words.tsv").write_text("\n".join([head] + [l for l in lines if l.split("\t")[0] in utts]) + "\n",
+                                      encoding="utf-8")
+    for u in utts:
+        shutil.copy(corpus / "audio" / f"{u}.opus", folder / "audio" / f"{u}.opus")
+    return folder
+
+
+@pytest.mark.slow
+def test_adapt_learns_from_an_aligned_corpus_too(checked, corpus, tmp_path):
+    idx, sample = checked
+    utts = ["mbA00013", "mbA00014", "mbA00015"]  # not in the indexed broadcast
+    folder = small_aligned_corpus(corpus, tmp_path / "aligned", utts)
+    n_words = sum(1 for l in (folder / "words.tsv").read_text(encoding="utf-8").splitlines()[1:])
+    code, text = run("adapt", "--index", idx, "--checked", sample, "--aligned", folder)
+    assert code == 0, text
+    assert f"and {n_words} aligned words" in text
+
+
+def test_aligned_corpus_errors_are_one_line(corpus, tmp_path):
+    folder = small_aligned_corpus(corpus, tmp_path / "aligned", ["mbA00013"])
+    (folder / "audio" / "mbA00013.opus").unlink()
+    code, text = run("adapt", "--index", tmp_path / "none", "--checked", tmp_path / "x.csv", "--aligned", folder)
+    assert code != 0 and "Traceback" not in text
+    from detector import TrawlError
+    from detector.aligned import read_aligned
+
+    with pytest.raises(TrawlError, match="no audio file for utterance 'mbA00013'"):
+        read_aligned(folder)
+    (folder / "words.tsv").write_text("utterance\tstart\tend\tword\nmbA00013\tsoon\t1.0\tkala\n", encoding="utf-8")
+    with pytest.raises(TrawlError, match="line 2: start and end must be seconds"):
+        read_aligned(folder)
+    with pytest.raises(TrawlError, match="is not a folder"):
+        read_aligned(tmp_path / "nowhere")
