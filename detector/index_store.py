@@ -6,7 +6,8 @@ Layout of INDEX_DIR:
     pending/ID.npy     vectors of finished broadcasts not yet merged into the graph
     letters/LABEL.npy  per broadcast, its letter posteriors (uint8, detector/letters.py), when the
                        models have a letter head; LABEL is the broadcast's first window label
-    graph.hnsw         hnswlib graph of all merged vectors (replaced atomically)
+    graph.hnsw         hnswlib graph of the merged vectors (replaced atomically); an index past
+    graph-K.hnsw       SHARD_CAPACITY windows continues in further shards (detector/graph.py)
     calibration.json, rules.txt, query_map.json   query-side settings (optional)
 
 Every write is atomic (temporary file, then os.replace) and every broadcast is committed
@@ -27,10 +28,11 @@ from pathlib import Path
 import numpy as np
 
 from . import TrawlError
+from .graph import SHARD_CAPACITY, ShardedGraph
 
 FORMAT_VERSION = 2
 MANIFEST = "trawl-index.json"
-HNSW_M = 8
+HNSW_M = 16  # level-0 links 2M: 8 was too few for high recall on a 100-hour index
 HNSW_EF_CONSTRUCTION = 120
 
 SCHEMA = """
@@ -65,6 +67,19 @@ def atomic_write(path: Path, data: bytes) -> None:
         if os.path.exists(tmp):
             os.unlink(tmp)
         raise
+
+
+def atomic_write_with(path: Path, write) -> None:
+    """Atomic write by a function that writes a file at a path it is given (hnswlib's save_index)."""
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    os.close(fd)
+    try:
+        write(tmp)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
 
 
 def _npy(a: np.ndarray) -> bytes:
@@ -112,7 +127,8 @@ class Index:
             "windows": [list(w) for w in models.windows],
             "dim": models.dim,
             "letters": (models.card.get("letters") or {}).get("alphabet"),
-            "hnsw": {"space": "ip", "M": HNSW_M, "ef_construction": HNSW_EF_CONSTRUCTION},
+            "hnsw": {"space": "ip", "M": HNSW_M, "ef_construction": HNSW_EF_CONSTRUCTION,
+                     "shard_capacity": SHARD_CAPACITY},
             "created": now(),
         }
         idx = cls(root, manifest)
@@ -208,33 +224,19 @@ class Index:
                 continue
         return out
 
-    def _new_graph(self, capacity: int):
-        import hnswlib
-
-        g = hnswlib.Index(space="ip", dim=self.dim)
-        h = self.manifest["hnsw"]
-        g.init_index(max_elements=max(capacity, 1000), M=h["M"], ef_construction=h["ef_construction"], random_seed=7)
-        return g
-
-    def load_graph(self, merge_pending: bool = True):
+    def load_graph(self, merge_pending: bool = True) -> ShardedGraph:
         """The HNSW graph with every committed broadcast in it (pending ones added in memory)."""
-        import hnswlib
-
         if self._graph is not None:
             return self._graph
-        total = self.next_label()
-        path = self.root / "graph.hnsw"
-        if path.exists():
-            g = hnswlib.Index(space="ip", dim=self.dim)
-            g.load_index(str(path), max_elements=max(total, 1000))
-        else:
-            g = self._new_graph(total)
+        h = self.manifest["hnsw"]
+        g = ShardedGraph.load(self.root, self.dim, h["M"], h["ef_construction"],
+                              int(h.get("shard_capacity", SHARD_CAPACITY)), self.next_label())
         if merge_pending:
             self._add_pending(g)
         self._graph = g
         return g
 
-    def _add_pending(self, g) -> list[int]:
+    def _add_pending(self, g: ShardedGraph) -> list[int]:
         pend = self._pending_files()
         added = []
         for row in self.db.execute("select first_label, n_windows from broadcasts where in_graph=0").fetchall():
@@ -243,28 +245,20 @@ class Index:
                 added.append(row[0])
                 continue
             vec = np.load(f)
-            need = g.get_current_count() + len(vec)
-            if need > g.get_max_elements():
-                g.resize_index(max(need, int(g.get_max_elements() * 1.5)))
             g.add_items(vec, np.arange(row[0], row[0] + len(vec)), num_threads=2)
             added.append(row[0])
         return added
 
     def merge(self) -> int:
-        """Merge pending vectors into graph.hnsw (atomically) and clear them. Returns windows merged."""
+        """Merge pending vectors into the graph's shards (each file replaced atomically) and clear
+        them. Returns windows merged. A run killed between two shard files re-adds the same
+        labels next time, which hnswlib treats as updates."""
         g = self.load_graph(merge_pending=False)
         before = g.get_current_count()
         added = self._add_pending(g)
         if not added:
             return 0
-        fd, tmp = tempfile.mkstemp(dir=self.root, prefix=".graph.", suffix=".tmp")
-        os.close(fd)
-        try:
-            g.save_index(tmp)
-            os.replace(tmp, self.root / "graph.hnsw")
-        finally:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
+        g.save(self.root, atomic_write_with)
         self.db.execute("update broadcasts set in_graph=1 where in_graph=0")
         self._drop_stale_pending()
         self._drop_stale_letters()

@@ -25,6 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from . import TrawlError
+from .graph import query_ef
 from .hits import Hit
 from .index_store import Index
 from .letters import dequantise, keyword_scores, letter_ids
@@ -222,7 +223,7 @@ class Searcher:
         ids = self.letter_targets(term) if (self.letter_pass and n_letters) else []
         n = self.graph.get_current_count()
         k = min(n, candidates or max(POOL_WINDOWS if ids else 300, 40 * (top or 25)))
-        self.graph.set_ef(max(k + 50, 400))
+        self.graph.set_ef(query_ef(k, self.graph.largest_shard()))
         labels, dist = self.graph.knn_query(v[None], k=k, num_threads=1)
         labels, raw = labels[0].astype(np.int64), 1.0 - dist[0]
         bi, wi = self.locate(labels)

@@ -156,3 +156,26 @@ def test_spoken_word_is_found_near_its_aligned_time(joined_broadcast, tmp_path):
         if any(abs((h.start + h.end) / 2 - m) <= 0.5 for h in hits for m in mids):
             found += 1
     assert found / len(targets) >= 0.6, f"found {found} of {len(targets)} words among the top 10"
+
+
+@pytest.mark.slow
+def test_an_index_past_one_shard_searches_all_its_shards(joined_broadcast, tmp_path, monkeypatch):
+    """With a tiny shard capacity the broadcast's windows spread over several graph files;
+    its words are still found (same criterion as above) and the vectors read back exactly."""
+    import detector.index_store as store
+
+    monkeypatch.setattr(store, "SHARD_CAPACITY", 400)
+    folder, name, words = joined_broadcast
+    index_archive(folder, tmp_path / "idx")
+    assert (tmp_path / "idx" / "graph-1.hnsw").exists()
+    s = Searcher(tmp_path / "idx")
+    assert len(s.graph.shards) >= 2 and s.graph.largest_shard() <= 400
+    labels = np.arange(s.graph.get_current_count())
+    np.testing.assert_allclose(np.linalg.norm(s.index.vectors(labels), axis=1), 1.0, atol=1e-4)
+    targets = {}
+    for st, en, w in words:
+        if letter_count(w) >= 6 and en - st <= 1.6:
+            targets.setdefault(w, []).append((st + en) / 2)
+    found = sum(any(abs((h.start + h.end) / 2 - m) <= 0.5 for h in s.search(w, top=10) for m in mids)
+                for w, mids in targets.items())
+    assert found / len(targets) >= 0.6, f"found {found} of {len(targets)} words among the top 10"

@@ -33,6 +33,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from exporters import broadcasts as heldout  # noqa: E402
 from detector.evaluate_run import CANDIDATES_PER_TERM, evaluate_hits  # noqa: E402
 from detector.evaluation import match_hits, read_reference  # noqa: E402
+from detector.graph import SHARD_CAPACITY, ShardedGraph, query_ef  # noqa: E402
 from detector.index_store import HNSW_EF_CONSTRUCTION, HNSW_M  # noqa: E402
 from detector import audio  # noqa: E402
 from detector.features import SAMPLE_RATE  # noqa: E402
@@ -46,9 +47,9 @@ CHUNK = 100_000  # random vectors generated (and regenerated for exact search) p
 
 
 def search_settings(top: int, n: int, letters: bool = True) -> tuple[int, int]:
-    """(candidates k, ef) for `Searcher.search(term, top=top)` on n windows: mirrors search_vector."""
+    """(candidates k, ef) for `Searcher.search(term, top=top)` on n windows: mirrors Searcher.rank."""
     k = min(n, max(POOL_WINDOWS if letters else 300, 40 * top))
-    return k, max(k + 50, 400)
+    return k, query_ef(k, min(n, SHARD_CAPACITY))
 
 
 # ------------------------------------------------------------------ broadcasts
@@ -167,11 +168,8 @@ def exact_top(queries: np.ndarray, dim: int, count: int, seed: int, k: int = 100
 
 
 def random_index_test(dim: int, count: int, seed: int = 11) -> dict:
-    import hnswlib
-
-    g = hnswlib.Index(space="ip", dim=dim)
+    g = ShardedGraph(dim, HNSW_M, HNSW_EF_CONSTRUCTION)  # the index's own graph class: shards, parallel queries
     t0 = time.perf_counter()
-    g.init_index(max_elements=count, M=HNSW_M, ef_construction=HNSW_EF_CONSTRUCTION, random_seed=7)
     for b, lo in enumerate(range(0, count, CHUNK)):
         n = min(CHUNK, count - lo)
         g.add_items(random_block(dim, seed, b, n), np.arange(lo, lo + n), num_threads=2)
@@ -179,6 +177,7 @@ def random_index_test(dim: int, count: int, seed: int = 11) -> dict:
     queries = random_block(dim, seed + 1, 0, RANDOM_QUERIES)
     truth = exact_top(queries, dim, count, seed)
     out = {"vectors": count, "dim": dim, "M": HNSW_M, "ef_construction": HNSW_EF_CONSTRUCTION,
+           "shards": len(g.shards), "shard_capacity": g.capacity,
            "build_seconds": build, "queries": RANDOM_QUERIES}
     for top in (10, CANDIDATES_PER_TERM):
         k, ef = search_settings(top, count)
@@ -250,7 +249,8 @@ def print_table(res: dict) -> None:
         return
     r = res["random_index"]
     print(f"random index: {r['vectors']} vectors ({r['hours']:g} h at {r['windows_per_audio_hour']:.0f} windows/h), "
-          f"dim {r['dim']}, M {r['M']}, ef_construction {r['ef_construction']}: built in {r['build_seconds']:.1f} s")
+          f"dim {r['dim']}, M {r['M']}, ef_construction {r['ef_construction']}, {r.get('shards', 1)} shard(s): "
+          f"built in {r['build_seconds']:.1f} s")
     for top in (10, CANDIDATES_PER_TERM):
         t = r[f"top{top}"]
         print(f"  as search(top={top}): ef {t['ef']}: k=100 {t['query_ms_k100']:.2f} ms, recall@100 {t['recall_at_100']:.3f}; "
