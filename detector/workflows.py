@@ -23,6 +23,7 @@ from .spelling import letter_count, word_type
 
 CALIBRATION_FILE = "calibration.json"
 QUERY_MAP_FILE = "query_map.json"
+MAP_MIN_GAIN = 0.01  # held-out MAP gain the query map must show: smaller gains are noise over a few dozen terms
 RULE_BACKGROUND = 400  # archive windows the learned rules are contrasted with
 MAX_ALIGNED_WORDS = 3000  # aligned-corpus words used at most (the rest would add time, not evidence)
 ARCHIVE_FRAMES = 360_000  # 2 hours of 20 ms frames decoded for the foreign-spelling test
@@ -191,7 +192,8 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned
                            "reason": "the index has no letter posteriors" if not searcher.letter_pass
                            else "the checked sample has no confirmed hit"}
     q = embed_spellings([respell[w] for w in spelled], models_dir)
-    qmap, map_report = fit_query_map(q, hit_vectors(q), y, spelled, background=searcher.index.vectors(bg))
+    qmap, map_report = fit_query_map(q, hit_vectors(q), y, spelled, background=searcher.index.vectors(bg),
+                                     min_gain=MAP_MIN_GAIN)
     qmap.sample_hash = sample_hash(checked)
     searcher.index.write_setting(QUERY_MAP_FILE, qmap.to_dict())
     report.update(map_report)

@@ -46,6 +46,7 @@ sys.path.insert(0, str(ROOT))
 from detector import TrawlError, api  # noqa: E402
 from detector.adaptation import MAX_TOLERATED_LOSS as TOLERATED_LOSS, fit_query_map  # noqa: E402
 from detector.letters import dequantise, quantise  # noqa: E402
+from detector.workflows import MAP_MIN_GAIN  # noqa: E402
 from detector.rule_learning import Evidence, fit_learned_rules, heard_letters, stretch  # noqa: E402
 from detector.evaluation import average_precision  # noqa: E402
 from detector.models import load as load_models  # noqa: E402
@@ -219,7 +220,7 @@ def adapt(tokens: Tokens, spelling_of: dict[str, str], types: list[str], n_hits:
     b_used = api.embed_spellings(b_rules if use_rules else b_spelled)
     try:
         qmap, report = fit_query_map(q, ev.vectors, ev.confirmed.astype(int), ev.terms, seed=seed,
-                                     background=ev.background_vectors)
+                                     background=ev.background_vectors, min_gain=MAP_MIN_GAIN)
     except TrawlError as exc:  # too few hits, terms or confirmations: search keeps the identity
         out["map"] = {"refused": str(exc), "enabled": False}
         out["after_used"] = crossview(tokens, b_used, b_types)
@@ -395,7 +396,7 @@ def print_table(result: dict) -> None:
 
 def print_adaptation(runs: list[dict]) -> None:
     """One line per A/B deal (seed), then the mean."""
-    print(f"    adaptation from checked hits of half the types (A), MAP on the other half (B), per deal:")
+    print("    adaptation from checked hits of half the types (A), MAP on the other half (B), per deal:")
     print(f"    {'deal':>4} {'hits':>5} {'conf':>5} {'orig':>6} {'before':>7} {'rules':>6} {'+map':>6} {'used':>6} "
           f"{'recov':>6}  rules on / map on")
     for k, ad in enumerate(runs):
