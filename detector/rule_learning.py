@@ -258,13 +258,9 @@ def learn_rules(ev: Evidence, terms: Sequence[str] | None = None, max_rules: int
     rules: list[Rule] = []
     spelled = {t: t for t in pool}
     for _ in range(max_rules):
-        support: dict[tuple[str, str], set[str]] = {}
-        for t in pool:
-            for i in ev.indices(t, True):
-                for pair in phrase_pairs(spelled[t], heard[i]):
-                    support.setdefault(pair, set()).add(t)
+        candidates = {pair for t in pool for i in ev.indices(t, True) for pair in phrase_pairs(spelled[t], heard[i])}
         shortlist = []
-        for (src, tgt), _seen in support.items():
+        for src, tgt in sorted(candidates):
             rule = Rule(src, tgt)
             need = 1 if is_foreign(src, typed, ev.archive_letters) else MIN_SUPPORT
             changed = {}
@@ -280,7 +276,7 @@ def learn_rules(ev: Evidence, terms: Sequence[str] | None = None, max_rules: int
             gain = np.array([ev.embedding_fit(t, new) - ev.embedding_fit(t, spelled[t]) for t, new in changed.items()])
             if gain.sum() > 0:
                 shortlist.append((float(gain.sum()), rule, changed, gain))
-        shortlist.sort(key=lambda x: -x[0])
+        shortlist.sort(key=lambda x: (-x[0], x[1].left, x[1].right))  # ties in a fixed order: the same sample, the same rules
         best = None
         for _g, rule, changed, gain in shortlist[:LETTER_SHORTLIST]:
             total = gain + np.array([ev.letter_fit(t, new) - ev.letter_fit(t, spelled[t]) for t, new in changed.items()])
