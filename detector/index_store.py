@@ -34,6 +34,7 @@ FORMAT_VERSION = 2
 MANIFEST = "trawl-index.json"
 HNSW_M = 16  # level-0 links 2M: 8 was too few for high recall on a 100-hour index
 HNSW_EF_CONSTRUCTION = 120
+UNSHARDED = 2**62  # shard capacity of indexes written before shards existed
 
 SCHEMA = """
 create table if not exists broadcasts (
@@ -229,8 +230,9 @@ class Index:
         if self._graph is not None:
             return self._graph
         h = self.manifest["hnsw"]
+        # an index made before shards has one graph of any size: it stays one shard
         g = ShardedGraph.load(self.root, self.dim, h["M"], h["ef_construction"],
-                              int(h.get("shard_capacity", SHARD_CAPACITY)), self.next_label())
+                              int(h.get("shard_capacity", UNSHARDED)), self.next_label())
         if merge_pending:
             self._add_pending(g)
         self._graph = g

@@ -65,3 +65,17 @@ def test_query_effort_grows_with_the_shard_and_covers_k():
     assert query_ef(1600, 1000) == 1650  # small index: the candidates asked for decide
     assert query_ef(100, 1_000_000) == 8000  # the measured point for 1e6 vectors a shard
     assert 11_000 <= query_ef(100, 3_300_000) <= 13_000
+
+
+def test_an_index_made_before_shards_stays_one_graph(tmp_path):
+    """Indexes written before shards have no shard capacity in their manifest: however many
+    windows they hold, every label stays in the one graph file."""
+    from detector.index_store import UNSHARDED
+
+    vecs = unit_rows(50, 8, 4)
+    g = ShardedGraph(8, 16, 100, capacity=UNSHARDED)
+    g.add_items(vecs, np.arange(50))
+    g.save(tmp_path, atomic_write_with)
+    again = ShardedGraph.load(tmp_path, 8, 16, 100, UNSHARDED, total=50)
+    assert len(again.shards) == 1 and [p.name for p in tmp_path.iterdir()] == ["graph.hnsw"]
+    np.testing.assert_allclose(again.get_items(np.arange(50)), vecs, atol=1e-6)
