@@ -22,9 +22,15 @@ app = typer.Typer(
     pretty_exceptions_enable=False, no_args_is_help=True, add_completion=False)
 rules_app = typer.Typer(help="Spelling rules stored in an index, applied to every search.", no_args_is_help=True)
 app.add_typer(rules_app, name="rules")
+def _piped_width(default: int = 160) -> int:
+    """COLUMNS when it is a positive number (shells and CI runners may set it empty or odd)."""
+    value = os.environ.get("COLUMNS", "").strip()
+    return int(value) if value.isdigit() and int(value) > 0 else default
+
+
 out = Console()
 if not out.is_terminal:  # piped or captured: keep table rows on one line each
-    out = Console(width=int(os.environ.get("COLUMNS", "160")))
+    out = Console(width=_piped_width())
 err = Console(stderr=True)
 
 

@@ -131,3 +131,12 @@ def test_evaluate_prints_twv_for_a_transcribed_broadcast(index, joined_broadcast
     res = json.loads(text)
     assert set(res["per_term"]) == {"mósωngώsώ", "okándá"} and -1000 < res["mtwv"] <= 1.0
     assert res["per_term"]["okándá"]["occurrences"] == sum(1 for *_, w in words if w == "okándá")
+
+
+@pytest.mark.parametrize("value, width", [("", 160), ("abc", 160), ("-5", 160), ("0", 160), ("100", 100)])
+def test_an_odd_columns_variable_does_not_break_the_command(monkeypatch, value, width):
+    """Environments set COLUMNS empty or to non-numbers; the CLI must still start (hand-worked widths)."""
+    from detector.cli import _piped_width
+
+    monkeypatch.setenv("COLUMNS", value)
+    assert _piped_width() == width
