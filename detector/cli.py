@@ -460,7 +460,9 @@ def status_cmd(index: Path = IndexOpt):
     t.add_row("spelling rules", "yes" if idx.read_text("rules.txt") else "no")
     qm = idx.read_setting("query_map.json")
     t.add_row("adaptation: query map", ("on" if qm.get("report", {}).get("enabled") else "off (did not help)") if qm else "no")
-    lr = idx.read_setting("learned_rules.json")
+    from .rule_learning import LEARNED_RULES_FILE
+
+    lr = idx.read_setting(LEARNED_RULES_FILE)
     n_rules = len(lr.get("rules", "").splitlines()) if lr else 0
     t.add_row("adaptation: learned rules", (f"on ({n_rules} rules)" if lr.get("enabled") else
                                              f"off ({n_rules} rules, did not help)") if lr else "no")

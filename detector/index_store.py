@@ -55,23 +55,9 @@ create table if not exists meta (key text primary key, value text);
 """
 
 
-def atomic_write(path: Path, data: bytes) -> None:
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def atomic_write_with(path: Path, write) -> None:
-    """Atomic write by a function that writes a file at a path it is given (hnswlib's save_index)."""
+    """Atomic write by a function that writes a file at the path it is given (hnswlib's save_index,
+    or `atomic_write`'s writer): a temporary file beside `path`, then os.replace."""
     path = Path(path)
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     os.close(fd)
@@ -81,6 +67,16 @@ def atomic_write_with(path: Path, write) -> None:
     finally:
         if os.path.exists(tmp):
             os.unlink(tmp)
+
+
+def atomic_write(path: Path, data: bytes) -> None:
+    def write(tmp: str) -> None:
+        with open(tmp, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+
+    atomic_write_with(path, write)
 
 
 def _npy(a: np.ndarray) -> bytes:

@@ -23,6 +23,7 @@ from .spelling import letters
 QUANT_STEP = 0.1  # nats per stored unit
 QUANT_MAX = 255
 CHUNK = 3000  # 20 ms frames per head pass on long broadcasts
+LETTER_FLOOR = -8.0  # lowest alignment cost per letter counted (no alignment fits: this)
 
 
 def alphabet_of(symbols: list[str]) -> list[str]:
@@ -56,6 +57,12 @@ def quantise(logp: np.ndarray) -> np.ndarray:
 
 def dequantise(q: np.ndarray) -> np.ndarray:
     return -q.astype(np.float32) * QUANT_STEP
+
+
+def per_letter(cost: np.ndarray, n_letters: int) -> np.ndarray:
+    """Alignment cost per letter, floored at LETTER_FLOOR (-inf, no alignment, counts as the floor):
+    the letter view's evidence, in search and in rule learning alike."""
+    return np.maximum(np.asarray(cost, np.float64) / max(1, n_letters), LETTER_FLOOR)
 
 
 def keyword_scores(regions: list[np.ndarray], ids: list[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

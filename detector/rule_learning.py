@@ -46,13 +46,12 @@ from scipy.special import logsumexp
 from . import TrawlError
 from .evaluation import average_precision
 from .adaptation import MAX_TOLERATED_LOSS
-from .letters import keyword_scores, letter_ids
+from .letters import LETTER_FLOOR, keyword_scores, letter_ids, per_letter
 from .rules import Rule, RuleSet, parse_rules
 
 FORMAT_VERSION = 1
 LEARNED_RULES_FILE = "learned_rules.json"  # beside the index's other settings
 TEMPERATURE = 0.05  # cosine scale of the embedding view (its scores are cosines in [-1, 1])
-LETTER_FLOOR = -8.0  # per-letter cost floor, as in search
 MAX_SPAN = 3  # longest left side of a candidate, in characters
 MIN_SUPPORT = 2
 MIN_GAIN = 1.0  # nats, summed over the changed terms' confirmed hits
@@ -178,32 +177,31 @@ class Evidence:
         """Rejected hits of any term and confirmed hits of other terms (indices into the sample)."""
         return np.flatnonzero(~self.confirmed | (self.terms_arr != term))
 
-    def views(self, term: str, s: str, hits: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """Embedding and letter evidence of spelling s for `hits` and for term's negatives + background."""
-        key = (term, s, tuple(hits.tolist()))
-        if key in self._views:
-            return self._views[key]
+    def _embedding(self, term: str, s: str, hits: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Embedding evidence of spelling s for `hits` and for the term's negatives, then the background."""
         q = self.spelled_vector(s)
-        neg = self.negatives(term)
-        e_hit = self.vectors[hits] @ q / TEMPERATURE
-        e_neg = np.concatenate([self.vectors[neg] @ q, self.background_vectors @ q]) / TEMPERATURE
-        ids = letter_ids(s, self.table)
-        if ids:
-            regs = [self.regions[i] for i in hits] + [self.regions[i] for i in neg] + list(self.background_regions)
-            cost, _, _ = keyword_scores(regs, ids)
-            ev = np.maximum(cost / len(ids), LETTER_FLOOR)
-            l_hit, l_neg = ev[: len(hits)], ev[len(hits):]
-        else:
-            l_hit, l_neg = np.full(len(hits), LETTER_FLOOR), np.full(len(e_neg), LETTER_FLOOR)
-        self._views[key] = (e_hit, e_neg, l_hit, l_neg)
+        e_neg = np.concatenate([self.vectors[self.negatives(term)] @ q, self.background_vectors @ q])
+        return self.vectors[hits] @ q / TEMPERATURE, e_neg / TEMPERATURE
+
+    def views(self, term: str, s: str, hits: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Embedding and letter evidence of spelling s for `hits` and for the term's negatives, then
+        the background (the background's entries are the last ones of the negatives' arrays)."""
+        key = (term, s, tuple(hits.tolist()))
+        if key not in self._views:
+            e_hit, e_neg = self._embedding(term, s, hits)
+            ids = letter_ids(s, self.table)
+            if ids:
+                regs = [self.regions[i] for i in hits] + [self.regions[i] for i in self.negatives(term)]
+                cost, _, _ = keyword_scores(regs + list(self.background_regions), ids)
+                ev = per_letter(cost, len(ids))
+                l_hit, l_neg = ev[: len(hits)], ev[len(hits):]
+            else:
+                l_hit, l_neg = np.full(len(hits), LETTER_FLOOR), np.full(len(e_neg), LETTER_FLOOR)
+            self._views[key] = (e_hit, e_neg, l_hit, l_neg)
         return self._views[key]
 
     def embedding_fit(self, term: str, s: str) -> float:
-        hits = self.indices(term, True)
-        q = self.spelled_vector(s)
-        e_hit = self.vectors[hits] @ q / TEMPERATURE
-        e_neg = np.concatenate([self.vectors[self.negatives(term)] @ q, self.background_vectors @ q]) / TEMPERATURE
-        return _rank_loglik(e_hit, e_neg)
+        return _rank_loglik(*self._embedding(term, s, self.indices(term, True)))
 
     def letter_fit(self, term: str, s: str) -> float:
         _, _, l_hit, l_neg = self.views(term, s, self.indices(term, True))
@@ -298,15 +296,9 @@ def held_out_scores(ev: Evidence, term: str, s: str) -> tuple[float, float] | No
     if not len(conf):
         return None
     hits = np.concatenate([conf, rej])
-    e_hit, _, l_hit, _ = ev.views(term, s, hits)
-    q = ev.spelled_vector(s)
-    e_bg = ev.background_vectors @ q / TEMPERATURE
-    ids = letter_ids(s, ev.table)
-    if ids and len(ev.background_regions):
-        c, _, _ = keyword_scores(list(ev.background_regions), ids)
-        l_bg = np.maximum(c / len(ids), LETTER_FLOOR)
-    else:
-        l_bg = np.full(len(e_bg), LETTER_FLOOR)
+    e_hit, e_neg, l_hit, l_neg = ev.views(term, s, hits)
+    n_bg = len(ev.background_vectors)
+    e_bg, l_bg = e_neg[len(e_neg) - n_bg:], l_neg[len(l_neg) - n_bg:]
     scores = np.concatenate([e_hit + l_hit, e_bg + l_bg])
     labels = np.concatenate([np.ones(len(conf)), np.zeros(len(rej) + len(e_bg))])
     return average_precision(scores, labels), _rank_loglik(scores[labels == 1], scores[labels == 0])

@@ -180,6 +180,14 @@ class RuleSet:
         steps = self.trace(word)
         return steps[-1].after if steps else _collapse(word_type(word))
 
+    def apply_or_keep(self, word: str) -> str:
+        """`apply`, or `word` unchanged when a rule would leave it without letters or blow it up
+        (learned rules: a rule fitted on other terms must not make a term unsearchable)."""
+        try:
+            return self.apply(word)
+        except TrawlError:
+            return word
+
     def to_text(self) -> str:
         """Canonical rules text (no comments): one rule per line; parses back to equal rules."""
         return "".join(rule.to_text() + "\n" for rule in self.rules)

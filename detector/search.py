@@ -28,7 +28,7 @@ from . import TrawlError
 from .graph import query_ef
 from .hits import Hit
 from .index_store import Index
-from .letters import dequantise, keyword_scores, letter_ids
+from .letters import dequantise, keyword_scores, letter_ids, per_letter
 from .models import load
 from .spelling import check_term, letter_count
 from .windows import window_times
@@ -38,7 +38,6 @@ FEEDBACK_HITS = 0  # pseudo-relevance feedback: top hits whose vectors are added
 FEEDBACK_WEIGHT = 1.0
 NORMALISE = True  # score = z-score of the cosine against the archive's windows (else the cosine itself)
 LETTER_MARGIN = 0.25  # seconds of audio either side of a candidate window searched by the letter alignment
-LETTER_FLOOR = -8.0  # lowest alignment cost per letter counted (no alignment fits: this)
 DEFAULT_LETTER_WEIGHT, DEFAULT_TAU = 1.0, 1.0  # used when the model card records no fitted values
 POOL_REGIONS = 200  # candidate stretches per term given the letter pass (the normalisation pool)
 POOL_WINDOWS = 1600  # nearest windows fetched, at least, to fill that pool after NMS
@@ -139,10 +138,7 @@ class Searcher:
             t = check_term(term)
             spelled = self.rules.apply(t) if self.rules else t
             if self.learned_rules is not None:
-                try:
-                    spelled = self.learned_rules.apply(spelled)
-                except TrawlError:  # a learned rule would leave this term without letters: skip them
-                    pass
+                spelled = self.learned_rules.apply_or_keep(spelled)
             v = embed_spellings([spelled])[0]
             if use_map and self.query_map is not None and self.query_map.enabled:
                 v = self.query_map.apply(v[None])[0]
@@ -165,9 +161,12 @@ class Searcher:
 
     def stretch_letters(self, broadcast: str, start: float, end: float) -> np.ndarray | None:
         """Letter log-probs of a stretch of a broadcast (rule_learning.REGION_MARGIN either side)."""
+        return self._stretch(self.names.index(broadcast), start, end) if broadcast in self.names else None
+
+    def _stretch(self, b: int, start: float, end: float) -> np.ndarray | None:
         from .rule_learning import stretch
 
-        post = self.broadcast_letters(self.names.index(broadcast)) if broadcast in self.names else None
+        post = self.broadcast_letters(b)
         if post is None:
             return None
         return dequantise(stretch(post, start, end, float(self.index.manifest["frame_seconds"])))
@@ -181,7 +180,7 @@ class Searcher:
                 out.append(None)
                 continue
             s, e = window_times(self.spans[b][0][w : w + 1], self.spans[b][1][w : w + 1], self.index.windows)
-            out.append(self.stretch_letters(self.names[b], float(s[0]), float(e[0])))
+            out.append(self._stretch(int(b), float(s[0]), float(e[0])))
         return out
 
     def window_vector(self, broadcast: str, start: float, end: float) -> np.ndarray:
@@ -282,8 +281,7 @@ class Searcher:
 
     def combine(self, z: np.ndarray, cost: np.ndarray, n_letters: int) -> np.ndarray:
         """A candidate's evidence: embedding z-score plus weight x alignment cost per letter (floored)."""
-        per_letter = np.maximum(np.asarray(cost, np.float64) / max(1, n_letters), LETTER_FLOOR)
-        return np.asarray(z, np.float64) + self.letter_weight * per_letter
+        return np.asarray(z, np.float64) + self.letter_weight * per_letter(cost, n_letters)
 
     def normaliser(self, pool_evidence: np.ndarray) -> float:
         """tau * log sum exp(evidence / tau) over a query's candidate pool (sum-to-one in the log domain)."""

@@ -144,18 +144,23 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned
     rows = [r for r in read_checked(Path(checked)) if r.verdict is not None]
     if not rows:
         raise TrawlError(f"{checked}: no row has a verdict (fill the verdict column with yes or no)")
-    spelled, y, regions = [], [], []
+    spelled, base, y, regions = [], [], [], []
     for r in rows:
         try:
             searcher.overlapping(r.broadcast, r.start, r.end)
         except TrawlError as e:
             raise TrawlError(f"{checked}, line {r.line}: {e}") from None
-        spelled.append(searcher.spelling_vector(r.term, use_map=False)[1])
+        _, sp, v = searcher.spelling_vector(r.term, use_map=False)
+        spelled.append(sp)
+        base.append(v)
         y.append(1 if r.verdict else 0)
         regions.append(searcher.stretch_letters(r.broadcast, r.start, r.end))
     n_checked = len(rows)
     extra_spelled, extra_vectors, extra_regions = (aligned_examples(searcher, Path(aligned)) if aligned
                                                    else ([], np.zeros((0, searcher.models.dim), np.float32), []))
+    if extra_spelled:  # already respelled by the archivist's rules: embed as they are, once per spelling
+        vector_of = dict(zip(sorted(set(extra_spelled)), embed_spellings(sorted(set(extra_spelled)), models_dir)))
+        base += [vector_of[w] for w in extra_spelled]
     spelled += extra_spelled
     y += [1] * len(extra_spelled)
     regions += extra_regions
@@ -167,12 +172,13 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned
 
     report: dict = {"checked_hits": n_checked, "aligned_words": len(extra_spelled)}
     respell = {w: w for w in set(spelled)}
-    bg = searcher.background_labels[:: max(1, len(searcher.background_labels) // RULE_BACKGROUND)][:RULE_BACKGROUND]
+    step = max(1, len(searcher.background_labels) // RULE_BACKGROUND)  # a spread subset of the search's background
+    bg, bg_vectors = searcher.background_labels[::step][:RULE_BACKGROUND], searcher.background[::step][:RULE_BACKGROUND]
     if searcher.letter_pass and all(g is not None for g in regions) and any(y):
         bg_regions = searcher.window_letters(bg)
         keep = [i for i, g in enumerate(bg_regions) if g is not None and len(g)]
-        ev = Evidence(spelled, hit_vectors(embed_spellings(spelled, models_dir)), regions, np.array(y, bool),
-                      searcher.index.vectors(bg[keep]), [bg_regions[i] for i in keep], archive_letters(searcher),
+        ev = Evidence(spelled, hit_vectors(np.array(base)), regions, np.array(y, bool),
+                      bg_vectors[keep], [bg_regions[i] for i in keep], archive_letters(searcher),
                       searcher.models.letter_table, searcher.models.alphabet,
                       lambda ws: embed_spellings(ws, models_dir))
         learned = fit_learned_rules(ev)
@@ -181,19 +187,18 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned
         report["rules"] = {**learned.report, "learned": learned.rules_text.splitlines()}
         if learned.enabled:
             rs = learned.ruleset()
-            for w in respell:
-                try:
-                    respell[w] = rs.apply(w)
-                except TrawlError:
-                    pass
+            respell = {w: rs.apply_or_keep(w) for w in respell}
     else:
         searcher.index.write_setting(LEARNED_RULES_FILE, None)
         report["rules"] = {"enabled": False, "learned": [],
                            "reason": "the index has no letter posteriors" if not searcher.letter_pass
                            else "the checked sample has no confirmed hit"}
-    q = embed_spellings([respell[w] for w in spelled], models_dir)
-    qmap, map_report = fit_query_map(q, hit_vectors(q), y, spelled, background=searcher.index.vectors(bg),
-                                     min_gain=MAP_MIN_GAIN)
+    if any(respell[w] != w for w in respell):
+        vector_of = dict(zip(sorted(respell), embed_spellings([respell[w] for w in sorted(respell)], models_dir)))
+        q = np.array([vector_of[w] for w in spelled])
+    else:
+        q = np.array(base)
+    qmap, map_report = fit_query_map(q, hit_vectors(q), y, spelled, background=bg_vectors, min_gain=MAP_MIN_GAIN)
     qmap.sample_hash = sample_hash(checked)
     searcher.index.write_setting(QUERY_MAP_FILE, qmap.to_dict())
     report.update(map_report)

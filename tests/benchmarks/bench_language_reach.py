@@ -407,15 +407,20 @@ def print_adaptation(runs: list[dict]) -> None:
               f"{' '.join(ad['rules']['learned'][:6])}")
     before = float(np.mean([ad["before"]["map"] for ad in runs]))
     used = float(np.mean([ad["after_used"]["map"] for ad in runs]))
+    learned = float(np.mean([ad["after_rules"]["map"] for ad in runs]))
+    up = sum(ad["after_rules"]["map"] > ad["before"]["map"] for ad in runs)
     worst = min(ad["after_used"]["map"] - ad["before"]["map"] for ad in runs)
-    tail = ""
+    tail, tail_learned = "", ""
     if all("gap" in ad for ad in runs):
         gap = float(np.mean([ad["gap"] for ad in runs]))
         rec = (used - before) / gap if gap > 0 else None
         ok = rec is not None and rec >= TARGET_GAP_RECOVERED
         tail = (f"; gap {fmt(gap)}, recovered {fmt(rec)} of it "
                 f"(target >= {TARGET_GAP_RECOVERED}: {'met' if ok else 'NOT met'})")
+        tail_learned = f", {fmt((learned - before) / gap if gap > 0 else None)} of the gap"
     print(f"    mean over {len(runs)} deals: B MAP {fmt(before)} -> {fmt(used)} as searched{tail}")
+    print(f"    with the learned rules as learned (switched on or not): B MAP {fmt(learned)}{tail_learned}; "
+          f"B up in {up} of {len(runs)} deals")
     print(f"    worst change of B MAP {worst:+.3f} (never worse than -{TOLERATED_LOSS}: "
           f"{'met' if worst >= -TOLERATED_LOSS else 'NOT met'})")
 
