@@ -102,6 +102,14 @@ def archive_letters(searcher: Searcher, frame_budget: int = ARCHIVE_FRAMES) -> s
     return " ".join(out)
 
 
+def background_rows(labels: np.ndarray, checked_labels: np.ndarray, n: int = RULE_BACKGROUND) -> np.ndarray:
+    """Positions in `labels` (the search's background windows) of at most n windows, spread evenly,
+    that are not windows of a checked hit: in a small archive the random background can hold a
+    checked hit's own windows, and a confirmed hit must not count against its own term."""
+    free = np.flatnonzero(~np.isin(labels, checked_labels))
+    return free[:: max(1, len(free) // n)][:n]
+
+
 def aligned_examples(searcher: Searcher, corpus: Path, max_words: int = MAX_ALIGNED_WORDS):
     """Spellings (after the archivist's rules), span vectors and letter stretches of the aligned
     words of a corpus in the shared layout, up to `max_words` words."""
@@ -144,10 +152,10 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned
     rows = [r for r in read_checked(Path(checked)) if r.verdict is not None]
     if not rows:
         raise TrawlError(f"{checked}: no row has a verdict (fill the verdict column with yes or no)")
-    spelled, base, y, regions = [], [], [], []
+    spelled, base, y, regions, checked_labels = [], [], [], [], []
     for r in rows:
         try:
-            searcher.overlapping(r.broadcast, r.start, r.end)
+            checked_labels.append(searcher.overlapping(r.broadcast, r.start, r.end)[0])
         except TrawlError as e:
             raise TrawlError(f"{checked}, line {r.line}: {e}") from None
         _, sp, v = searcher.spelling_vector(r.term, use_map=False)
@@ -172,8 +180,8 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned
 
     report: dict = {"checked_hits": n_checked, "aligned_words": len(extra_spelled)}
     respell = {w: w for w in set(spelled)}
-    step = max(1, len(searcher.background_labels) // RULE_BACKGROUND)  # a spread subset of the search's background
-    bg, bg_vectors = searcher.background_labels[::step][:RULE_BACKGROUND], searcher.background[::step][:RULE_BACKGROUND]
+    rows_bg = background_rows(searcher.background_labels, np.concatenate(checked_labels))
+    bg, bg_vectors = searcher.background_labels[rows_bg], searcher.background[rows_bg]
     if searcher.letter_pass and all(g is not None for g in regions) and any(y):
         bg_regions = searcher.window_letters(bg)
         keep = [i for i, g in enumerate(bg_regions) if g is not None and len(g)]

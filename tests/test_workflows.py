@@ -146,3 +146,16 @@ def test_aligned_corpus_errors_are_one_line(corpus, tmp_path):
         read_aligned(folder)
     with pytest.raises(TrawlError, match="is not a folder"):
         read_aligned(tmp_path / "nowhere")
+
+
+def test_adapt_background_leaves_out_the_checked_hits_windows():
+    """Hand-worked: windows 0..11, checked hits cover windows 2, 3 and 7; four spread picks of the
+    nine free windows (0 1 4 5 6 8 9 10 11) take every second one: 0 4 6 9."""
+    import numpy as np
+
+    from detector.workflows import background_rows
+
+    labels = np.arange(100, 112)
+    rows = background_rows(labels, np.array([102, 103, 107, 103]), n=4)
+    assert labels[rows].tolist() == [100, 104, 106, 109]
+    assert background_rows(labels, np.array([], np.int64), n=20).tolist() == list(range(12))

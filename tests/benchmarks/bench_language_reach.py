@@ -171,6 +171,18 @@ def checked_sample(tokens: Tokens, queries: dict[str, np.ndarray], order: list[s
     return out
 
 
+def background(tokens: Tokens, checked: list[tuple[str, int, bool]], rng: np.random.Generator) -> np.ndarray:
+    """Up to BACKGROUND random tokens standing for the random archive windows `trawl adapt` samples.
+
+    In an archive of hundreds of hours a random window almost never holds a checked hit or
+    another occurrence of a checked term; among a few hundred corpus tokens it often would
+    (the hit itself, drawn again, counted against its own term). So the checked hits and the
+    tokens of the checked terms are left out of the draw."""
+    checked_types, checked_tokens = {t for t, _, _ in checked}, {i for _, i, _ in checked}
+    pool = np.array([i for i in range(len(tokens)) if tokens.types[i] not in checked_types and i not in checked_tokens])
+    return np.sort(rng.choice(pool, min(BACKGROUND, len(pool)), replace=False))
+
+
 def halves(types: list[str], seed: int) -> tuple[list[str], list[str]]:
     """Types dealt into halves A (checked) and B (evaluated), A in checking order."""
     order = np.random.default_rng(seed).permutation(len(types))
@@ -193,7 +205,7 @@ def adapt(tokens: Tokens, spelling_of: dict[str, str], types: list[str], n_hits:
     zero = dict(zip(types, api.embed_spellings([spelling_of[t] for t in types])))
     checked = checked_sample(tokens, zero, a_types, n_hits, per_term)
     rng = np.random.default_rng(seed)
-    bg = np.sort(rng.choice(len(tokens), min(BACKGROUND, len(tokens)), replace=False))
+    bg = background(tokens, checked, rng)
     m = load_models()
     ev = Evidence([spelling_of[t] for t, _, _ in checked], tokens.vectors[[i for _, i, _ in checked]],
                   [tokens.regions[i] for _, i, _ in checked], np.array([c for _, _, c in checked]),
