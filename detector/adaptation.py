@@ -288,7 +288,8 @@ def _cross_validate(
 
     Without ``background``, a term's checked hits are ranked among themselves (terms with
     both verdicts); with it (unit rows of other archive windows), its confirmed hits are
-    ranked among its rejected hits and the background (terms with a confirmed hit)."""
+    ranked among every other hit of the sample (rejected hits of any term, confirmed hits of
+    other terms) and the background (terms with a confirmed hit), as a search ranks them."""
     unique = sorted(set(s.terms))
     order = np.random.default_rng(seed).permutation(len(unique))
     k = min(folds, len(unique))
@@ -308,9 +309,11 @@ def _cross_validate(
                 q0 = s.q[idx[0]]
                 q1 = m @ q0
                 q1 = q1 / max(np.linalg.norm(q1), _TINY)
-                labels = np.concatenate([y, np.zeros(len(background))])
-                before.append(average_precision(np.concatenate([s.a[idx], background]) @ q0, labels))
-                after.append(average_precision(np.concatenate([s.a[idx], background]) @ q1, labels))
+                own = (terms == t) & (s.y == 1)
+                pool = np.concatenate([s.a[own], s.a[~own], background])
+                labels = np.concatenate([np.ones(int(own.sum())), np.zeros(len(pool) - int(own.sum()))])
+                before.append(average_precision(pool @ q0, labels))
+                after.append(average_precision(pool @ q1, labels))
                 continue
             if y.all() or not y.any():
                 continue  # AP is 1 or undefined whatever the map: no information
@@ -345,7 +348,7 @@ def fit_query_map(
     default 0.03 kept the loss under 0.01 of held-out MAP on constructed samples
     without any mismatch while still undoing most of a rotation of the queries.
     ``background``: optional (m, d) vectors of other archive windows; the held-out check
-    then ranks each term's confirmed hits among its rejected hits and these, as search does.
+    then ranks each term's confirmed hits among every other checked hit and these, as search does.
     """
     if lam < 0 or temperature <= 0 or pull < 0 or steps < 1 or lr <= 0:
         raise TrawlError("fit_query_map needs lam >= 0, pull >= 0, temperature > 0, steps >= 1, lr > 0")

@@ -134,3 +134,23 @@ def test_learned_rules_round_trip_and_refuse_unknown_formats():
     bad = dict(learned.to_dict(), format_version=99)
     with pytest.raises(Exception, match="unknown format"):
         LearnedRules.from_dict(bad)
+
+
+def test_held_out_check_ranks_a_terms_confirmed_hits_among_every_other_hit_and_the_background():
+    """Hand-worked: hits of 'ab' (confirmed at [1, 0], rejected at [.6, .8]) and 'cd' (confirmed at
+    [0, 1]), one background window at [.8, .6]. Spelled 'ab' (-> [1, 0]) the confirmed hit ranks
+    first of four (AP 1); spelled 'xy' (-> [0, 1]) it ranks last (AP 1/4). Scores are cosine / 0.05."""
+    from scipy.special import logsumexp
+
+    from detector.rule_learning import TEMPERATURE, held_out_scores
+
+    spell = {"ab": [1.0, 0.0], "xy": [0.0, 1.0]}
+    ev = Evidence(["ab", "ab", "cd"], np.array([[1, 0], [0.6, 0.8], [0, 1]], np.float32), [None] * 3,
+                  np.array([True, False, True]), np.array([[0.8, 0.6]], np.float32), [None], "", {}, [],
+                  lambda ws: np.array([spell[w] for w in ws], np.float32))
+    ap, ll = held_out_scores(ev, "ab", "ab")
+    assert ap == 1.0
+    assert ll == pytest.approx(20 - np.logaddexp(20, logsumexp([12, 0, 16])), abs=1e-4)
+    assert held_out_scores(ev, "ab", "xy")[0] == pytest.approx(0.25)
+    assert TEMPERATURE == 0.05
+    assert held_out_scores(ev, "zz", "ab") is None  # no confirmed hit: nothing to judge by
