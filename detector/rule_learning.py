@@ -179,7 +179,7 @@ class Evidence:
         """Rejected hits of any term and confirmed hits of other terms (indices into the sample)."""
         return np.flatnonzero(~self.confirmed | (self.terms_arr != term))
 
-    def _embedding(self, term: str, s: str, hits: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def embedding_scores(self, term: str, s: str, hits: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Embedding evidence of spelling s for `hits` and for the term's negatives, then the background."""
         q = self.spelled_vector(s)
         e_neg = np.concatenate([self.vectors[self.negatives(term)] @ q, self.background_vectors @ q])
@@ -190,7 +190,7 @@ class Evidence:
         the background (the background's entries are the last ones of the negatives' arrays)."""
         key = (term, s, tuple(hits.tolist()))
         if key not in self._views:
-            e_hit, e_neg = self._embedding(term, s, hits)
+            e_hit, e_neg = self.embedding_scores(term, s, hits)
             ids = letter_ids(s, self.table)
             if ids:
                 regs = [self.regions[i] for i in hits] + [self.regions[i] for i in self.negatives(term)]
@@ -203,7 +203,7 @@ class Evidence:
         return self._views[key]
 
     def embedding_fit(self, term: str, s: str) -> float:
-        return _rank_loglik(*self._embedding(term, s, self.indices(term, True)))
+        return _rank_loglik(*self.embedding_scores(term, s, self.indices(term, True)))
 
     def letter_fit(self, term: str, s: str) -> float:
         _, _, l_hit, l_neg = self.views(term, s, self.indices(term, True))
@@ -301,9 +301,9 @@ def held_out_scores(ev: Evidence, term: str, s: str) -> tuple[float, float] | No
     conf = ev.indices(term, True)
     if not len(conf):
         return None
-    pos, neg = ev._embedding(term, s, conf)
-    scores, labels = np.concatenate([pos, neg]), np.concatenate([np.ones(len(pos)), np.zeros(len(neg))])
-    return average_precision(scores, labels), _rank_loglik(pos, neg)
+    pos, neg = ev.embedding_scores(term, s, conf)
+    labels = np.concatenate([np.ones(len(pos)), np.zeros(len(neg))])
+    return average_precision(np.concatenate([pos, neg]), labels), _rank_loglik(pos, neg)  # the log-likelihood is embedding_fit's
 
 
 def cross_validate(ev: Evidence, folds: int = 5, seed: int = 0, repeats: int = REPEATS) -> dict[str, list[float]]:
@@ -312,6 +312,7 @@ def cross_validate(ev: Evidence, folds: int = 5, seed: int = 0, repeats: int = R
     cross-validation: with a few dozen terms one deal's estimate is noisy)."""
     terms = sorted(set(ev.terms))
     k = min(folds, len(terms))
+    before = {t: held_out_scores(ev, t, t) for t in terms}  # the typed spelling's scores: the same in every fold
     out: dict[str, list[float]] = {"ap_before": [], "ap_after": [], "ll_before": [], "ll_after": []}
     for r in range(repeats):
         order = np.random.default_rng(seed + 1000 * r).permutation(len(terms))
@@ -321,7 +322,7 @@ def cross_validate(ev: Evidence, folds: int = 5, seed: int = 0, repeats: int = R
             for t in terms:
                 if fold_of[t] != f:
                     continue
-                b = held_out_scores(ev, t, t)
+                b = before[t]
                 if b is None:
                     continue
                 new = _apply(rules, t) or t
