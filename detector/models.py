@@ -9,6 +9,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import unicodedata
 from functools import lru_cache
 from pathlib import Path
 
@@ -74,6 +75,7 @@ class Models:
             self.sessions[key] = ort.InferenceSession(str(path), opts, providers=["CPUExecutionProvider"])
         self.symbols = self.card["symbols"]
         self.table = {c: i for i, c in enumerate(self.symbols)}
+        self.marks = [c for c in self.symbols if len(c) == 1 and unicodedata.combining(c)]  # tone and other marks it reads
         self.dim = int(self.card["embedding_dim"])
         self.context_frames = int(self.card["receptive_frames"])
         self.windows = [tuple(w) for w in self.card["windows"]]

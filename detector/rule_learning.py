@@ -10,7 +10,12 @@ so that what was learned can be read, stored and edited like a hand-written rule
    model's letters and aligned to the term's spelling by edit distance (Levenshtein);
    every pair of a substring of the spelling (1-3 characters) and the letters aligned to
    it that differ is a candidate rule (phrase pairs consistent with an alignment, as in
-   phrase-based translation: Koehn et al., NAACL 2003).
+   phrase-based translation: Koehn et al., NAACL 2003). Greedy CTC decoding merges a
+   repeated letter, so a pair that drops a letter after another (``ah -> a``) is also
+   proposed as a doubling (``ah -> aa``: a length sign). Signs the letter head cannot hear
+   at all (digits, punctuation: a typed tone or length sign) get candidates of their own
+   (`sign_pairs`): each combining mark the spelling encoder reads, a doubling of the letter
+   before, or nothing.
 2. Evidence. A spelling's fit to a term's confirmed hits is measured in both views the
    search uses, each as the log-probability of ranking each confirmed hit above a
    background of other audio (the rejected hits and random archive windows):
@@ -37,6 +42,7 @@ Pure functions and a small dataclass; `embed` (spellings -> unit vectors) is pas
 
 from __future__ import annotations
 
+import unicodedata
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Any, Callable, Sequence
@@ -134,6 +140,29 @@ def phrase_pairs(typed: str, heard: str, max_span: int = MAX_SPAN) -> set[tuple[
             src, tgt = typed[a:b], "".join(heard[j] for j in js)
             if src != tgt and len(tgt) <= max_span and not (set(src + tgt) & FORBIDDEN) and not src[0].isspace():
                 out.add((src, tgt))
+                if len(src) == 2 and tgt == src[0] and src[1].isalpha():
+                    out.add((src, src[0] * 2))  # heard once: greedy decoding merges a doubled letter
+    return out
+
+
+def sign_pairs(typed: str, marks: Sequence[str]) -> set[tuple[str, str]]:
+    """Candidates for the signs in a typed spelling that are neither letters nor marks (digits,
+    colons, apostrophes: how keyboards write tone and length). For a sign c after a letter x:
+    c -> m for each combining mark m in `marks` (when a letter comes before it, perhaps through other
+    signs, which the spelling encoder drops), xc -> xx (a length sign), and c -> nothing."""
+    out = set()
+    after_letter = False  # a letter comes before, perhaps with other signs between
+    for k, c in enumerate(typed):
+        if c.isspace():
+            after_letter = False
+        if c.isalpha() or c.isspace() or unicodedata.combining(c) or c in FORBIDDEN:
+            after_letter = after_letter or c.isalpha()
+            continue
+        out.add((c, ""))
+        if typed[k - 1: k].isalpha():
+            out.add((typed[k - 1] + c, typed[k - 1] * 2))
+        if after_letter:
+            out.update((c, m) for m in marks)
     return out
 
 
@@ -157,6 +186,7 @@ class Evidence:
     table: dict[str, int]
     alphabet: list[str]
     embed: Embed
+    marks: Sequence[str] = ()  # the combining marks the spelling encoder reads (candidates for signs)
     _emb: dict = field(default_factory=dict, repr=False)
     _views: dict = field(default_factory=dict, repr=False)
 
@@ -259,6 +289,7 @@ def learn_rules(ev: Evidence, terms: Sequence[str] | None = None, max_rules: int
     spelled = {t: t for t in pool}
     for _ in range(max_rules):
         candidates = {pair for t in pool for i in ev.indices(t, True) for pair in phrase_pairs(spelled[t], heard[i])}
+        candidates |= {pair for t in pool for pair in sign_pairs(spelled[t], ev.marks)}
         shortlist = []
         for src, tgt in sorted(candidates):
             rule = Rule(src, tgt)

@@ -188,7 +188,7 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned
         ev = Evidence(spelled, hit_vectors(np.array(base)), regions, np.array(y, bool),
                       bg_vectors[keep], [bg_regions[i] for i in keep], archive_letters(searcher),
                       searcher.models.letter_table, searcher.models.alphabet,
-                      lambda ws: embed_spellings(ws, models_dir))
+                      lambda ws: embed_spellings(ws, models_dir), searcher.models.marks)
         learned = fit_learned_rules(ev)
         learned.sample_hash = sample_hash(checked)
         searcher.index.write_setting(LEARNED_RULES_FILE, learned.to_dict())

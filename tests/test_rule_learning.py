@@ -12,7 +12,7 @@ import pytest
 from detector import api
 from detector.models import load
 from detector.rule_learning import (Evidence, LearnedRules, edit_alignment, fit_learned_rules, heard_letters,
-                                    is_foreign, learn_rules, phrase_pairs, stretch)
+                                    is_foreign, learn_rules, phrase_pairs, sign_pairs, stretch)
 
 
 def alignment_cost(a, b, pairs):
@@ -38,6 +38,24 @@ def test_phrase_pairs_find_digraphs_and_swaps():
     assert ("eh", "ε") in pairs
     assert all(src != tgt for src, tgt in pairs)
     assert phrase_pairs("mama", "mama") == set()
+
+
+def test_a_letter_heard_once_is_also_proposed_doubled():
+    # greedy CTC decoding merges a repeated letter, so "bahna" heard as "bana" may mean "baana"
+    pairs = phrase_pairs("bahna", "bana")
+    assert ("ah", "a") in pairs and ("ah", "aa") in pairs
+    pairs = phrase_pairs("banda", "bada")
+    assert ("an", "aa") in pairs and ("an", "nn") not in pairs  # the letter kept is the one doubled
+    assert ("and", "aad") not in pairs  # only a one-letter drop from a pair of letters
+
+
+def test_signs_the_letter_head_cannot_hear_get_mark_length_and_deletion_candidates():
+    acute = "\u0301"
+    # worked by hand: ':' after 'a' -> deletion, doubling 'a: -> aa', the mark; '1' follows ':', so no
+    # doubling, but a letter comes before it (through ':'), so the mark and the deletion
+    assert sign_pairs("ba:1", [acute]) == {(":", ""), ("a:", "aa"), (":", acute), ("1", ""), ("1", acute)}
+    assert sign_pairs("1ba", [acute]) == {("1", "")}  # no letter before: no mark to carry
+    assert sign_pairs("bana", [acute]) == set()
 
 
 def test_heard_letters_is_ctc_best_path():

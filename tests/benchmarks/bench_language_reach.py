@@ -210,7 +210,7 @@ def adapt(tokens: Tokens, spelling_of: dict[str, str], types: list[str], n_hits:
     ev = Evidence([spelling_of[t] for t, _, _ in checked], tokens.vectors[[i for _, i, _ in checked]],
                   [tokens.regions[i] for _, i, _ in checked], np.array([c for _, _, c in checked]),
                   tokens.vectors[bg], [tokens.regions[i] for i in bg], tokens.archive, m.letter_table,
-                  m.alphabet, api.embed_spellings)
+                  m.alphabet, api.embed_spellings, m.marks)
     out: dict = {"types_a": len(a_types), "types_b": len(b_types), "hits": len(checked),
                  "confirmed": int(ev.confirmed.sum()), "checked_terms": len(set(ev.terms)),
                  "confirmed_terms": len({t for t, _, c in checked if c}), "hits_per_term": per_term}
