@@ -43,7 +43,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from . import TrawlError
-from .evaluation import average_precision
+from .evaluation import average_precision, ranked_ap
 
 FORMAT_VERSION = 1
 MIN_HITS = 10
@@ -310,10 +310,9 @@ def _cross_validate(
                 q1 = m @ q0
                 q1 = q1 / max(np.linalg.norm(q1), _TINY)
                 own = (terms == t) & (s.y == 1)
-                pool = np.concatenate([s.a[own], s.a[~own], background])
-                labels = np.concatenate([np.ones(int(own.sum())), np.zeros(len(pool) - int(own.sum()))])
-                before.append(average_precision(pool @ q0, labels))
-                after.append(average_precision(pool @ q1, labels))
+                others = np.concatenate([s.a[~own], background])
+                before.append(ranked_ap(s.a[own] @ q0, others @ q0))
+                after.append(ranked_ap(s.a[own] @ q1, others @ q1))
                 continue
             if y.all() or not y.any():
                 continue  # AP is 1 or undefined whatever the map: no information

@@ -86,6 +86,13 @@ def average_precision(scores: Sequence[float], labels: Sequence[Any]) -> float:
 # Matching
 
 
+def ranked_ap(positives: Sequence[float], negatives: Sequence[float]) -> float:
+    """Average precision of the positives' scores ranked among the negatives' (the held-out checks
+    of `trawl adapt`: a term's confirmed hits among every other hit and the archive sample)."""
+    pos, neg = np.asarray(positives, float).ravel(), np.asarray(negatives, float).ravel()
+    return average_precision(np.concatenate([pos, neg]), np.r_[np.ones(len(pos)), np.zeros(len(neg))])
+
+
 def _normaliser(accent_insensitive: bool) -> Callable[[str], str]:
     if accent_insensitive:
         return lambda text: strip_marks(word_type(text))

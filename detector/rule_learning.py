@@ -51,7 +51,7 @@ import numpy as np
 from scipy.special import logsumexp
 
 from . import TrawlError
-from .evaluation import average_precision
+from .evaluation import ranked_ap
 from .adaptation import MAX_TOLERATED_LOSS
 from .letters import LETTER_FLOOR, keyword_scores, letter_ids, per_letter
 from .rules import Rule, RuleSet, parse_rules
@@ -147,9 +147,10 @@ def phrase_pairs(typed: str, heard: str, max_span: int = MAX_SPAN) -> set[tuple[
 
 def sign_pairs(typed: str, marks: Sequence[str]) -> set[tuple[str, str]]:
     """Candidates for the signs in a typed spelling that are neither letters nor marks (digits,
-    colons, apostrophes: how keyboards write tone and length). For a sign c after a letter x:
-    c -> m for each combining mark m in `marks` (when a letter comes before it, perhaps through other
-    signs, which the spelling encoder drops), xc -> xx (a length sign), and c -> nothing."""
+    colons, apostrophes: how keyboards write tone and length). For each sign c: c -> nothing;
+    xc -> xx when the letter x comes just before it (a length sign); c -> m for each combining
+    mark m in `marks` when a letter comes before it in its word, perhaps through other signs
+    (a tone sign: the spelling encoder drops digits and colons, so the mark reaches that letter)."""
     out = set()
     after_letter = False  # a letter comes before, perhaps with other signs between
     for k, c in enumerate(typed):
@@ -333,8 +334,7 @@ def held_out_scores(ev: Evidence, term: str, s: str) -> tuple[float, float] | No
     if not len(conf):
         return None
     pos, neg = ev.embedding_scores(term, s, conf)
-    labels = np.concatenate([np.ones(len(pos)), np.zeros(len(neg))])
-    return average_precision(np.concatenate([pos, neg]), labels), _rank_loglik(pos, neg)  # the log-likelihood is embedding_fit's
+    return ranked_ap(pos, neg), _rank_loglik(pos, neg)  # the log-likelihood is embedding_fit's
 
 
 def cross_validate(ev: Evidence, folds: int = 5, seed: int = 0, repeats: int = REPEATS) -> dict[str, list[float]]:

@@ -15,6 +15,7 @@ from detector.evaluation import (
     match_hits,
     mtwv,
     precision_at_k,
+    ranked_ap,
     read_reference,
     recall_at_k,
     term_breakdown,
@@ -34,6 +35,15 @@ def hit(term, start, end, score, broadcast=B, confidence=0.5):
 
 
 # ---------------------------------------------------------------- average precision
+
+
+def test_ranked_ap_equals_sklearn_on_the_positives_among_the_negatives():
+    # reference: scikit-learn's average_precision_score on the pooled scores
+    rng = np.random.default_rng(3)
+    pos, neg = rng.normal(1, 1, 4), rng.normal(0, 1, 30)
+    expected = average_precision_score(np.r_[np.ones(4), np.zeros(30)], np.r_[pos, neg])
+    assert ranked_ap(pos, neg) == pytest.approx(expected)
+    assert ranked_ap([0.9], [0.5, 0.95]) == pytest.approx(0.5)  # hand-worked: the one positive ranks second
 
 
 @pytest.mark.parametrize("seed", range(20))
