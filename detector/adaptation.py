@@ -43,7 +43,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from . import TrawlError
-from .evaluation import average_precision, ranked_ap
+from .evaluation import average_precision, ranked_ap, sampled_mtwv
 
 FORMAT_VERSION = 1
 MIN_HITS = 10
@@ -282,14 +282,17 @@ def _cosines(m: np.ndarray, q: np.ndarray, a: np.ndarray) -> np.ndarray:
 
 
 def _cross_validate(
-    s: _Sample, folds: int, seed: int, fit: dict[str, Any], background: np.ndarray | None = None
+    s: _Sample, folds: int, seed: int, fit: dict[str, Any], background: np.ndarray | None = None,
+    twv: tuple[list, list] | None = None,
 ) -> tuple[list[float], list[float]]:
     """Held-out AP per evaluable term, before and after, with folds dealt over terms.
 
     Without ``background``, a term's checked hits are ranked among themselves (terms with
     both verdicts); with it (unit rows of other archive windows), its confirmed hits are
     ranked among every other hit of the sample (rejected hits of any term, confirmed hits of
-    other terms) and the background (terms with a confirmed hit), as a search ranks them."""
+    other terms) and the background (terms with a confirmed hit), as a search ranks them.
+    ``twv``: two lists that receive, per such term, before and after, the cosines to its
+    confirmed hits, to the other hits and to the background (for evaluation.sampled_mtwv)."""
     unique = sorted(set(s.terms))
     order = np.random.default_rng(seed).permutation(len(unique))
     k = min(folds, len(unique))
@@ -313,6 +316,9 @@ def _cross_validate(
                 others = np.concatenate([s.a[~own], background])
                 before.append(ranked_ap(s.a[own] @ q0, others @ q0))
                 after.append(ranked_ap(s.a[own] @ q1, others @ q1))
+                if twv is not None:
+                    for out, qq in zip(twv, (q0, q1)):
+                        out.append((s.a[own] @ qq, s.a[~own] @ qq, background @ qq))
                 continue
             if y.all() or not y.any():
                 continue  # AP is 1 or undefined whatever the map: no information
@@ -332,6 +338,7 @@ def fit_query_map(
     *,
     min_gain: float = 0.0,
     background: np.ndarray | None = None,
+    total_seconds: float = 0.0,
     temperature: float = 0.1,
     pull: float = 1.0,
     steps: int = 300,
@@ -348,6 +355,8 @@ def fit_query_map(
     without any mismatch while still undoing most of a rotation of the queries.
     ``background``: optional (m, d) vectors of other archive windows; the held-out check
     then ranks each term's confirmed hits among every other checked hit and these, as search does.
+    ``total_seconds``: the archive's duration; with a background, the report then also holds the
+    held-out MTWV estimate before and after (evaluation.sampled_mtwv; reported, not used to switch).
     """
     if lam < 0 or temperature <= 0 or pull < 0 or steps < 1 or lr <= 0:
         raise TrawlError("fit_query_map needs lam >= 0, pull >= 0, temperature > 0, steps >= 1, lr > 0")
@@ -393,7 +402,11 @@ def fit_query_map(
         )
 
     bg = None if background is None else _unit_rows(np.array(background, dtype=np.float64), "background")
-    before, after = _cross_validate(s, folds, seed, fit, bg)
+    twv: tuple[list, list] | None = ([], []) if bg is not None and total_seconds > 0 else None
+    before, after = _cross_validate(s, folds, seed, fit, bg, twv)
+    if twv is not None and twv[0]:
+        report["before_mtwv"] = sampled_mtwv(twv[0], total_seconds)[0]
+        report["after_mtwv"] = sampled_mtwv(twv[1], total_seconds)[0]
     m, value = _fit_matrix(s, **fit)
     report["terms_evaluated"] = len(before)
     report["final_objective"] = value

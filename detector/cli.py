@@ -340,14 +340,15 @@ def adapt_cmd(
         return "-" if x is None else f"{x:.3f}"
 
     rules = rep.get("rules", {})
-    t = Table(title="Adaptation (held-out terms, cross-validated MAP)")
-    for c in ("lever", "before", "after", "switched on", "why"):
+    t = Table(title="Adaptation (held-out terms, cross-validated)")
+    for c in ("lever", "MAP before", "MAP after", "MTWV before", "MTWV after", "switched on", "why"):
         t.add_column(c)
-    t.add_row("learned respelling rules", cv(rules.get("before_map")), cv(rules.get("after_map")),
-              "yes" if rules.get("enabled") else "no", str(rules.get("reason", "")))
-    t.add_row("query map", cv(rep.get("before_map")), cv(rep.get("after_map")),
-              "yes" if rep.get("enabled") else "no", str(rep.get("reason", "")))
+    for name, r in (("learned respelling rules", rules), ("query map", rep)):
+        t.add_row(name, cv(r.get("before_map")), cv(r.get("after_map")), cv(r.get("before_mtwv")),
+                  cv(r.get("after_mtwv")), "yes" if r.get("enabled") else "no", str(r.get("reason", "")))
     out.print(t)
+    out.print("MTWV here is an estimate from the checked sample: its confirmed hits stand for all of a "
+              "term's occurrences, and a sample of archive windows for its false alarms", highlight=False)
     if rep.get("aligned_words"):
         out.print(f"learned from {rep['checked_hits']} checked hits and {rep['aligned_words']} aligned words")
     if rules.get("learned"):

@@ -350,6 +350,14 @@ def mtwv(
             for h, ok in counted
         ]
     ) / k
+    return _best_threshold(values, gains)
+
+
+def _best_threshold(values: np.ndarray, gains: np.ndarray) -> tuple[float, float]:
+    """Max over thresholds of the summed gains of the items scoring at or above it (0 at +inf),
+    and that threshold (the highest among equal values)."""
+    if not len(values):
+        return 0.0, math.inf
     order = np.argsort(-values, kind="mergesort")
     values, gains = values[order], gains[order]
     last = np.r_[np.nonzero(np.diff(values))[0], values.size - 1]
@@ -358,6 +366,37 @@ def mtwv(
     if twv[best] <= 0.0:
         return 0.0, math.inf
     return float(twv[best]), float(values[last[best]])
+
+
+def sampled_mtwv(
+    terms: Sequence[tuple[Sequence[float], Sequence[float], Sequence[float]]],
+    total_seconds: float,
+    beta: float = DEFAULT_BETA,
+) -> tuple[float, float]:
+    """MTWV estimated from a checked sample, one global threshold over every term's scores.
+
+    Per term: (scores of its confirmed hits, scores of the other checked hits, scores of a
+    random sample of archive windows). As in ``mtwv`` (NIST 2006: one non-target trial per
+    second, T - N_true of them), except that what a checked sample cannot count is estimated:
+    the confirmed hits stand for all of the term's occurrences (N_true = their number, a lower
+    bound: occurrences the search never offered are not known), and the archive's false alarms
+    are estimated from the window sample, each sampled window standing for one second of the
+    archive, so P_FA = (sampled windows >= threshold) / (sample size) + (other checked hits
+    >= threshold) / (T - N_true). Terms without a confirmed hit are left out.
+    """
+    if total_seconds <= 0:
+        raise TrawlError(f"total duration must be positive, not {total_seconds}")
+    used = [(np.asarray(p, float), np.asarray(o, float), np.asarray(b, float)) for p, o, b in terms if len(p)]
+    if not used:
+        return 0.0, math.inf
+    k = len(used)
+    values, gains = [], []
+    for pos, other, bg in used:
+        n = len(pos)
+        values += [pos, other, bg]
+        gains += [np.full(n, 1.0 / (k * n)), np.full(len(other), -beta / (k * max(total_seconds - n, 1.0))),
+                  np.full(len(bg), -beta / (k * max(len(bg), 1)))]
+    return _best_threshold(np.concatenate(values), np.concatenate(gains))
 
 
 # --------------------------------------------------------------------------

@@ -35,7 +35,9 @@ so that what was learned can be read, stored and edited like a hand-written rule
    fetches). Reported: the mean AP (MAP) both ways. The rules are enabled when the held-out
    ranking improves by either of two measures, MAP or the confirmed hits' log-likelihood
    of the ranking (its smooth form: with one or two confirmed hits per term, AP moves in
-   big steps), and held-out MAP drops by no more than MAX_TOLERATED_LOSS (0.02).
+   big steps), and held-out MAP drops by no more than MAX_TOLERATED_LOSS (0.02). The held-out
+   MTWV is estimated too (evaluation.sampled_mtwv) and reported, not used to switch: a checked
+   sample does not know the occurrences the search never offered.
 
 Pure functions and a small dataclass; `embed` (spellings -> unit vectors) is passed in.
 """
@@ -51,7 +53,7 @@ import numpy as np
 from scipy.special import logsumexp
 
 from . import TrawlError
-from .evaluation import ranked_ap
+from .evaluation import ranked_ap, sampled_mtwv
 from .adaptation import MAX_TOLERATED_LOSS
 from .letters import LETTER_FLOOR, keyword_scores, letter_ids, per_letter
 from .rules import Rule, RuleSet, parse_rules
@@ -188,6 +190,7 @@ class Evidence:
     alphabet: list[str]
     embed: Embed
     marks: Sequence[str] = ()  # the combining marks the spelling encoder reads (candidates for signs)
+    archive_seconds: float = 0.0  # the archive's duration, for the held-out MTWV estimate (0: not estimated)
     _emb: dict = field(default_factory=dict, repr=False)
     _views: dict = field(default_factory=dict, repr=False)
 
@@ -337,17 +340,28 @@ def held_out_scores(ev: Evidence, term: str, s: str) -> tuple[float, float] | No
     return ranked_ap(pos, neg), _rank_loglik(pos, neg)  # the log-likelihood is embedding_fit's
 
 
+def _twv_scores(ev: Evidence, term: str, s: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Cosines of spelling s to the term's confirmed hits, to every other checked hit, to the background."""
+    pos, neg = ev.embedding_scores(term, s, ev.indices(term, True))
+    n_checked = len(ev.negatives(term))
+    return pos * TEMPERATURE, neg[:n_checked] * TEMPERATURE, neg[n_checked:] * TEMPERATURE
+
+
 def cross_validate(ev: Evidence, folds: int = 5, seed: int = 0, repeats: int = REPEATS) -> dict[str, list[float]]:
     """Per held-out term (with a confirmed hit) and per repeat: AP and log-likelihood before and after
-    the rules learned without its fold. Each repeat deals the terms into folds afresh (repeated
-    cross-validation: with a few dozen terms one deal's estimate is noisy)."""
+    the rules learned without its fold; per repeat, when the archive's duration is known, the MTWV
+    estimate over the held-out terms (evaluation.sampled_mtwv, one threshold on the cosine). Each
+    repeat deals the terms into folds afresh (repeated cross-validation: with a few dozen terms one
+    deal's estimate is noisy)."""
     terms = sorted(set(ev.terms))
     k = min(folds, len(terms))
     before = {t: held_out_scores(ev, t, t) for t in terms}  # the typed spelling's scores: the same in every fold
-    out: dict[str, list[float]] = {"ap_before": [], "ap_after": [], "ll_before": [], "ll_after": []}
+    out: dict[str, list[float]] = {"ap_before": [], "ap_after": [], "ll_before": [], "ll_after": [],
+                                   "mtwv_before": [], "mtwv_after": []}
     for r in range(repeats):
         order = np.random.default_rng(seed + 1000 * r).permutation(len(terms))
         fold_of = {terms[j]: pos % k for pos, j in enumerate(order)}
+        twv_before, twv_after = [], []
         for f in range(k):
             rules = learn_rules(ev, [t for t in terms if fold_of[t] != f])
             for t in terms:
@@ -360,6 +374,12 @@ def cross_validate(ev: Evidence, folds: int = 5, seed: int = 0, repeats: int = R
                 a = held_out_scores(ev, t, new) if new != t else b
                 for key, v in zip(("ap_before", "ap_after", "ll_before", "ll_after"), (b[0], a[0], b[1], a[1])):
                     out[key].append(v)
+                if ev.archive_seconds > 0:
+                    twv_before.append(_twv_scores(ev, t, t))
+                    twv_after.append(_twv_scores(ev, t, new))
+        if twv_before:
+            out["mtwv_before"].append(sampled_mtwv(twv_before, ev.archive_seconds)[0])
+            out["mtwv_after"].append(sampled_mtwv(twv_after, ev.archive_seconds)[0])
     return out
 
 
@@ -410,6 +430,8 @@ def fit_learned_rules(ev: Evidence, folds: int = 5, seed: int = 0) -> LearnedRul
     gain = float(np.sum(cv["ll_after"]) - np.sum(cv["ll_before"]))
     better = a > b or gain > 0
     enabled = better and a >= b - MAX_TOLERATED_LOSS
+    if cv["mtwv_before"]:
+        report.update(before_mtwv=float(np.mean(cv["mtwv_before"])), after_mtwv=float(np.mean(cv["mtwv_after"])))
     report.update(before_map=b, after_map=a, gain=a - b, held_out_loglik_gain=gain, enabled=enabled,
                   reason="held-out terms' confirmed hits rank higher" if enabled else
                   f"held-out MAP would drop from {b:.3f} to {a:.3f}" if better else

@@ -188,7 +188,7 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned
         ev = Evidence(spelled, hit_vectors(np.array(base)), regions, np.array(y, bool),
                       bg_vectors[keep], [bg_regions[i] for i in keep], archive_letters(searcher),
                       searcher.models.letter_table, searcher.models.alphabet,
-                      lambda ws: embed_spellings(ws, models_dir), searcher.models.marks)
+                      lambda ws: embed_spellings(ws, models_dir), searcher.models.marks, searcher.total_seconds)
         learned = fit_learned_rules(ev)
         learned.sample_hash = sample_hash(checked)
         searcher.index.write_setting(LEARNED_RULES_FILE, learned.to_dict())
@@ -206,7 +206,8 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned
         q = np.array([vector_of[w] for w in spelled])
     else:
         q = np.array(base)
-    qmap, map_report = fit_query_map(q, hit_vectors(q), y, spelled, background=bg_vectors, min_gain=MAP_MIN_GAIN)
+    qmap, map_report = fit_query_map(q, hit_vectors(q), y, spelled, background=bg_vectors, min_gain=MAP_MIN_GAIN,
+                                     total_seconds=searcher.total_seconds)
     qmap.sample_hash = sample_hash(checked)
     searcher.index.write_setting(QUERY_MAP_FILE, qmap.to_dict())
     report.update(map_report)

@@ -237,3 +237,35 @@ def test_held_out_check_against_background_switches_on_a_map_that_undoes_a_rotat
     assert report["terms_evaluated"] == len(set(rotated[3]))  # every term has a confirmed hit
     assert report["after_map"] > report["before_map"] and qm.enabled
 
+
+
+def test_held_out_mtwv_is_reported_and_its_before_value_is_the_typed_queries_estimate():
+    """The 'before' MTWV uses no fitted map, so it is evaluation.sampled_mtwv (checked against the NIST
+    definition in test_evaluation.py) over every term's cosines, computed here directly."""
+    from detector.evaluation import sampled_mtwv
+
+    rng = np.random.default_rng(5)
+    d, n_terms = 16, 8
+    protos = _unit(rng.normal(size=(n_terms, d)))
+    q, a, y, terms = [], [], [], []
+    for t in range(n_terms):  # constructed: queries near their term's audio, confirmed hits close to it
+        for j in range(6):
+            confirmed = j % 2 == 0
+            src = protos[t] if confirmed else rng.normal(size=d)  # rejected: audio of no checked term
+            a.append(_unit(src + 0.05 * rng.normal(size=d)))
+            q.append(_unit(protos[t] + 0.05 * rng.normal(size=d)) if j == 0 else q[-1])
+            y.append(int(confirmed))
+            terms.append(f"term{t}")
+    q, a, y = np.array(q), np.array(a), np.array(y)
+    background = _unit(rng.normal(size=(200, d)))
+    _, report = fit_query_map(q, a, y, terms, folds=4, seed=0, background=background, total_seconds=3600.0)
+    t = np.array(terms, dtype=object)
+    per_term = []
+    for name in sorted(set(terms)):
+        own = (t == name) & (y == 1)
+        q0 = q[np.flatnonzero(t == name)[0]]
+        per_term.append((a[own] @ q0, a[~own] @ q0, background @ q0))
+    assert report["before_mtwv"] == pytest.approx(sampled_mtwv(per_term, 3600.0)[0], abs=1e-9)
+    assert report["before_mtwv"] > 0.9  # every confirmed hit above every random window: few misses, no false alarm
+    assert 0.0 <= report["after_mtwv"] <= 1.0
+    assert "before_mtwv" not in fit_query_map(q, a, y, terms, folds=4, seed=0, background=background)[1]

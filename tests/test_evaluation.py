@@ -16,6 +16,7 @@ from detector.evaluation import (
     mtwv,
     precision_at_k,
     ranked_ap,
+    sampled_mtwv,
     read_reference,
     recall_at_k,
     term_breakdown,
@@ -241,6 +242,34 @@ def test_mtwv_is_the_maximum_of_atwv_over_thresholds(seed):
     assert atwv(hits, ref, words, total, threshold, beta=20.0) == pytest.approx(value, abs=1e-12)
     for t in rng.uniform(-0.1, 1.1, size=10):
         assert value >= atwv(hits, ref, words, total, float(t), beta=20.0) - 1e-12
+
+
+def test_sampled_mtwv_hand_worked():
+    # One term, 2 confirmed hits (N_true = 2), one other checked hit, 4 sampled archive windows
+    # (each stands for one second: P_FA from them = count / 4), T = 1000 s, beta = 1.
+    # At threshold 0.5: P_miss = 0, P_FA = 1/4 (the 0.6 window) + 1/998 (the 0.7 checked hit)
+    #   TWV = 1 - (0 + 0.25 + 1/998) = 0.748998
+    # At 0.9: 1 - 1/2 = 0.5; at 0.7: 0.5 - 1/998; at 0.6: 0.25 - 1/998; at 0.3 and below, lower.
+    value, threshold = sampled_mtwv([([0.9, 0.5], [0.7], [0.6, 0.3, 0.2, 0.1])], 1000.0, beta=1.0)
+    assert value == pytest.approx(1 - 0.25 - 1 / 998, abs=1e-12)
+    assert threshold == 0.5
+    assert sampled_mtwv([([], [0.7], [0.6])], 1000.0) == (0.0, math.inf)  # no confirmed hit: no term
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_sampled_mtwv_without_a_window_sample_is_mtwv(seed):
+    # Checked against mtwv (itself checked on the NIST definition above): when every occurrence
+    # was hit and there is no window sample, the estimate is the exact MTWV.
+    rng = np.random.default_rng(seed)
+    words = ["alpha", "beta", "delta"]
+    ref = [(B, float(t), float(t) + 0.6, words[i % 3]) for i, t in enumerate(rng.choice(500, 12, replace=False))]
+    hits = [hit(w, s, e, float(rng.integers(0, 8)) / 8) for _, s, e, w in ref]
+    for _ in range(10):
+        start = float(600 + rng.uniform(0, 300))  # away from every occurrence: a false alarm
+        hits.append(hit(words[int(rng.integers(0, 3))], start, start + 0.5, float(rng.integers(0, 8)) / 8))
+    per_term = [([h.score for h in hits if h.term == w and h.start < 600], [h.score for h in hits if h.term == w and h.start >= 600], [])
+                for w in words]
+    assert sampled_mtwv(per_term, 1000.0, beta=20.0) == pytest.approx(mtwv(hits, ref, words, 1000.0, beta=20.0), abs=1e-12)
 
 
 def test_twv_errors():

@@ -6,6 +6,8 @@ checked on constructed samples whose letter posteriors spell the true word exact
 right rule is known by construction.
 """
 
+import unicodedata
+
 import numpy as np
 import pytest
 
@@ -172,3 +174,31 @@ def test_held_out_check_ranks_a_terms_confirmed_hits_among_every_other_hit_and_t
     assert held_out_scores(ev, "ab", "xy")[0] == pytest.approx(0.25)
     assert TEMPERATURE == 0.05
     assert held_out_scores(ev, "zz", "ab") is None  # no confirmed hit: nothing to judge by
+
+
+def test_a_typed_tone_digit_is_learned_as_the_mark_the_letter_head_cannot_hear():
+    """Typed 'ba1na' for 'bána': the letter head hears no tone, so only the sign candidates can
+    propose '1 -> ́'. Audio vectors are the spelling encoder's vectors of the true (marked) words;
+    letter posteriors spell their base letters; rejected hits are the unmarked words."""
+    m = load()
+    table, alphabet = m.letter_table, m.alphabet
+    acute = "\u0301"
+    base = WORDS[:12]
+    true = [unicodedata.normalize("NFC", w[:1] + w[1] + acute + w[2:]) for w in base]  # high tone on the 2nd letter (a vowel)
+    typed = [w[:2] + "1" + w[2:] for w in base]
+    vec = dict(zip(true + base + OTHERS, api.embed_spellings(true + base + OTHERS)))
+    terms, vecs, regions, conf = [], [], [], []
+    for b, t, s in zip(base, true, typed):
+        for audio, ok in ((t, True), (b, False)):
+            terms.append(s)
+            vecs.append(vec[audio])
+            regions.append(spell_posteriors(b, table))
+            conf.append(ok)
+    ev = Evidence(terms, np.array(vecs), regions, np.array(conf), np.array([vec[w] for w in OTHERS]),
+                  [spell_posteriors(w, table) for w in OTHERS], " ".join(OTHERS + base), table, alphabet,
+                  api.embed_spellings, m.marks, archive_seconds=3600.0)
+    rules = learn_rules(ev)
+    assert rules and rules[0].to_text() == "1 -> " + acute
+    learned = fit_learned_rules(ev, folds=4)
+    assert learned.enabled, learned.report
+    assert learned.report["after_mtwv"] >= learned.report["before_mtwv"]  # the MTWV estimate is reported too

@@ -82,6 +82,7 @@ def test_adapt_reports_both_levers_and_stores_the_learned_rules(checked):
     code, text = run("adapt", "--index", idx, "--checked", sample)
     assert code == 0, text
     assert "learned respelling rules" in text and "query map" in text
+    assert "MTWV before" in text and "MTWV after" in text  # held-out MTWV beside MAP, as the issue asks
     assert (idx / "learned_rules.json").exists()
     code, text = run("status", "--index", idx)
     assert code == 0 and "learned rules" in text
