@@ -20,7 +20,11 @@ terms and evaluated on them. For each held-out term that has both confirmed and
 rejected hits, average precision (AP) ranks its checked hits by cosine with the
 query, before (identity) and after (the fold's map); the report gives the mean
 over these terms (MAP) both ways. The map is *enabled* when
-``after_map >= before_map + min_gain``. ``min_gain`` defaults to 0 and may not
+``after_map >= before_map + min_gain`` and, when ``significance`` is given, a one-sided
+paired t-test over the held-out terms (Student's t on the per-term AP gains, as
+scipy.stats.ttest_rel) finds the gain at that level: with a few dozen terms, and
+checked hits that are the queries' own best hits, a point gain is often noise
+that the map then costs on other terms. ``min_gain`` defaults to 0 and may not
 be below ``-MAX_TOLERATED_LOSS`` (0.02): a map that makes held-out MAP worse by
 more than 0.02 is never enabled. A disabled map is still returned (with its
 report) so that it can be inspected; search should then use the identity
@@ -327,6 +331,20 @@ def _cross_validate(
     return before, after
 
 
+def paired_gain_p(before: Sequence[float], after: Sequence[float]) -> float:
+    """One-sided p-value that the mean of after - before is above 0 (Student's paired t-test);
+    1.0 when there is no spread to test (fewer than two terms, or every gain equal and not positive)."""
+    d = np.asarray(after, float) - np.asarray(before, float)
+    if d.size < 2:
+        return 1.0
+    sd = float(np.std(d, ddof=1))
+    if sd == 0.0:
+        return 0.0 if d[0] > 0 else 1.0
+    t = float(np.mean(d)) / (sd / np.sqrt(d.size))
+    from scipy.stats import t as student_t
+    return float(student_t.sf(t, d.size - 1))
+
+
 def fit_query_map(
     q: np.ndarray,
     a: np.ndarray,
@@ -337,6 +355,7 @@ def fit_query_map(
     seed: int = 0,
     *,
     min_gain: float = 0.0,
+    significance: float | None = None,
     background: np.ndarray | None = None,
     total_seconds: float = 0.0,
     temperature: float = 0.1,
@@ -377,6 +396,7 @@ def fit_query_map(
         "folds": min(folds, len(set(s.terms))),
         "seed": seed,
         "min_gain": min_gain,
+        "significance": significance,
         **fit,
     }
     sample_hash = _sample_hash(q, a, y, term_ids)
@@ -412,13 +432,16 @@ def fit_query_map(
     report["final_objective"] = value
     if before:
         before_map, after_map = float(np.mean(before)), float(np.mean(after))
-        enabled = after_map >= before_map + min_gain
+        p = paired_gain_p(before, after) if significance is not None else None
+        enabled = after_map >= before_map + min_gain and (p is None or p < significance)
         report.update(before_map=before_map, after_map=after_map, gain=after_map - before_map,
-                      enabled=enabled)
+                      enabled=enabled, gain_p=p)
         report["reason"] = (
-            "held-out MAP did not get worse" if enabled and min_gain <= 0
-            else "held-out MAP improved by at least min_gain" if enabled
-            else f"held-out MAP {after_map:.3f} with the map is below {before_map:.3f} + min_gain {min_gain}"
+            f"held-out MAP {after_map:.3f} with the map is below {before_map:.3f} + min_gain {min_gain}"
+            if after_map < before_map + min_gain
+            else f"the held-out gain is not significant (one-sided paired t-test, p = {p:.2f})" if not enabled
+            else "held-out MAP did not get worse" if min_gain <= 0 and p is None
+            else "held-out MAP improved by at least min_gain" + ("" if p is None else f" (p = {p:.3f})")
         )
     else:
         report.update(before_map=None, after_map=None, gain=None, enabled=False,

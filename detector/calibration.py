@@ -668,6 +668,29 @@ def suggest_sample(hits: Sequence[Any], n: int, seed: int = 0) -> list[Any]:
     return [hits[i] for i in sorted(chosen)]
 
 
+def best_first_sample(ranked: Sequence[Sequence[Any]], n: int) -> list[Any]:
+    """Choose ``n`` hits to check for adaptation: the best hit of every term, then the second
+    best of every term, and so on, terms in the order given, until ``n`` are chosen or every
+    hit is taken. ``ranked``: per term, its hits best first. Returns them term by term.
+
+    Unlike a calibration sample (which needs the whole score range), adaptation learns from
+    confirmed hits, and a term's best hits are the likeliest to be confirmed; spreading the
+    checks over as many terms as possible gives the rule learner as many different spellings,
+    and its cross-validation over terms as many held-out terms, as the checks can buy.
+    """
+    if n <= 0:
+        return []
+    depth = [0] * len(ranked)
+    left, rank = int(n), 0
+    while left and rank < max((len(r) for r in ranked), default=0):
+        for j, r in enumerate(ranked):
+            if left and rank < len(r):
+                depth[j] += 1
+                left -= 1
+        rank += 1
+    return [h for r, k in zip(ranked, depth) for h in r[:k]]
+
+
 # --------------------------------------------------------------------------
 # helpers
 

@@ -248,6 +248,19 @@ def search_cmd(
     out.print("[dim]Hits are candidates: listen to each before anyone is quoted or a record is changed.[/]")
 
 
+def _write_sample(hits, out_file: Optional[Path]) -> None:
+    """A sample of hits to check, as a hits CSV with an empty verdict column (to a file or stdout)."""
+    from .export import write_csv
+
+    for h in hits:
+        h.accepted = None
+    if out_file:
+        write_csv(hits, out_file, calibrated=False)
+        out.print(f"wrote {len(hits)} hits to check to {out_file}: fill the verdict column with yes or no")
+    else:
+        write_csv(hits, sys.stdout, calibrated=False)
+
+
 # ----------------------------------------------------------------- calibrate
 @app.command("calibrate")
 @friendly
@@ -267,18 +280,10 @@ def calibrate_cmd(
     run this. From then on `trawl search` shows calibrated confidences and, by default, only
     hits at or above the threshold chosen for the target precision.
     """
-    from .export import write_csv
     from .workflows import calibrate, suggest
 
     if suggest_n is not None:
-        hits = suggest(index, _read_terms([], terms_file), suggest_n, models_dir=models)
-        for h in hits:
-            h.accepted = None
-        if out_file:
-            write_csv(hits, out_file, calibrated=False)
-            out.print(f"wrote {len(hits)} hits to check to {out_file}: fill the verdict column with yes or no")
-        else:
-            write_csv(hits, sys.stdout, calibrated=False)
+        _write_sample(suggest(index, _read_terms([], terms_file), suggest_n, models_dir=models), out_file)
         return
     if checked is None:
         raise TrawlError("give the checked sample with --checked FILE (or --suggest N to make one)")
@@ -320,9 +325,13 @@ def calibrate_cmd(
 @friendly
 def adapt_cmd(
     index: Path = IndexOpt,
-    checked: Path = typer.Option(..., "--checked", help="A checked sample (hits CSV with the verdict column filled)."),
+    checked: Optional[Path] = typer.Option(None, "--checked", help="A checked sample (hits CSV with the verdict column filled)."),
     aligned: Optional[Path] = typer.Option(None, "--aligned", help="Also learn from a word-aligned corpus folder "
                                            "(utterances.tsv, words.tsv, audio/), e.g. a few transcribed recordings."),
+    suggest_n: Optional[int] = typer.Option(None, "--suggest", help="Instead of adapting: propose this many hits to "
+                                            "check, the best hit of each term first (as many terms as possible)."),
+    terms_file: Optional[Path] = typer.Option(None, "--terms", help="With --suggest: the terms to draw hits for (one per line)."),
+    out_file: Optional[Path] = typer.Option(None, "--out", help="With --suggest: write the sample to this CSV (default: print it)."),
     models: Optional[str] = ModelsOpt,
 ):
     """Teach the query side your language's spelling habits from checked hits.
@@ -332,8 +341,13 @@ def adapt_cmd(
     never change. Each is switched on only if it helps on terms held out from fitting;
     `trawl search --no-adapt` ignores both.
     """
-    from .workflows import adapt
+    from .workflows import adapt, suggest_for_adaptation
 
+    if suggest_n is not None:
+        _write_sample(suggest_for_adaptation(index, _read_terms([], terms_file), suggest_n, models), out_file)
+        return
+    if checked is None:
+        raise TrawlError("give the checked sample with --checked FILE (or --suggest N --terms FILE to make one)")
     rep = adapt(index, checked, models, aligned=aligned)
 
     def cv(x):

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from . import TrawlError
-from .calibration import Calibration, fit_calibration, hit_features, reliability_svg, suggest_sample
+from .calibration import Calibration, best_first_sample, fit_calibration, hit_features, reliability_svg, suggest_sample
 from .checked import read_checked, sample_hash
 from .hits import Hit
 from .letters import dequantise, quantise
@@ -24,6 +24,7 @@ from .spelling import letter_count, word_type
 CALIBRATION_FILE = "calibration.json"
 QUERY_MAP_FILE = "query_map.json"
 MAP_MIN_GAIN = 0.01  # held-out MAP gain the query map must show: smaller gains are noise over a few dozen terms
+MAP_SIGNIFICANCE = 0.05  # ... and that gain must pass a one-sided paired t-test over the held-out terms at this level
 RULE_BACKGROUND = 400  # archive windows the learned rules are contrasted with
 MAX_ALIGNED_WORDS = 3000  # aligned-corpus words used at most (the rest would add time, not evidence)
 ARCHIVE_FRAMES = 360_000  # 2 hours of 20 ms frames decoded for the foreign-spelling test
@@ -82,6 +83,17 @@ def suggest(index_dir: Path, terms: list[str], n: int, per_term: int = 60, model
     searcher = Searcher(index_dir, models_dir)
     pool = [h for t in terms for h in searcher.search(t, top=per_term)]
     return suggest_sample(pool, n, seed=seed)
+
+
+def suggest_for_adaptation(index_dir: Path, terms: list[str], n: int, models_dir: str | None = None) -> list[Hit]:
+    """N hits to check for `trawl adapt`: each term's best hit, then each term's second, ... (best_first_sample)."""
+    if n <= 0:
+        raise TrawlError("--suggest needs a positive number of hits")
+    if not terms:
+        raise TrawlError("--suggest needs terms to search for (--terms FILE)")
+    searcher = Searcher(index_dir, models_dir)
+    depth = -(-n // len(terms))  # ceil: the deepest rank the sample can reach
+    return best_first_sample([searcher.search(t, top=depth) for t in terms], n)
 
 
 def archive_letters(searcher: Searcher, frame_budget: int = ARCHIVE_FRAMES) -> str:
@@ -207,6 +219,7 @@ def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned
     else:
         q = np.array(base)
     qmap, map_report = fit_query_map(q, hit_vectors(q), y, spelled, background=bg_vectors, min_gain=MAP_MIN_GAIN,
+                                     significance=MAP_SIGNIFICANCE,
                                      total_seconds=searcher.total_seconds)
     qmap.sample_hash = sample_hash(checked)
     searcher.index.write_setting(QUERY_MAP_FILE, qmap.to_dict())

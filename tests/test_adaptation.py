@@ -269,3 +269,25 @@ def test_held_out_mtwv_is_reported_and_its_before_value_is_the_typed_queries_est
     assert report["before_mtwv"] > 0.9  # every confirmed hit above every random window: few misses, no false alarm
     assert 0.0 <= report["after_mtwv"] <= 1.0
     assert "before_mtwv" not in fit_query_map(q, a, y, terms, folds=4, seed=0, background=background)[1]
+
+
+def test_paired_gain_p_is_the_one_sided_paired_t_test():
+    # Reference: scipy.stats.ttest_rel (Student's paired t-test), alternative="greater".
+    from scipy.stats import ttest_rel
+
+    from detector.adaptation import paired_gain_p
+
+    rng = np.random.default_rng(5)
+    before = rng.uniform(0, 1, 30)
+    for shift in (0.0, 0.05, 0.2):
+        after = np.clip(before + shift + rng.normal(0, 0.2, 30), 0, 1)
+        assert paired_gain_p(before, after) == pytest.approx(ttest_rel(after, before, alternative="greater").pvalue, rel=1e-9)
+    assert paired_gain_p([0.5], [0.9]) == 1.0  # one term: nothing to test
+
+
+def test_a_map_whose_held_out_gain_is_not_significant_stays_off(rotated):
+    q, a, y, terms = rotated
+    _, strict = fit_query_map(q, a, y, terms, significance=1e-12)
+    _, loose = fit_query_map(q, a, y, terms, significance=0.5)
+    assert loose["enabled"] and loose["gain_p"] < 0.5
+    assert not strict["enabled"] and "not significant" in strict["reason"]

@@ -14,6 +14,7 @@ from scipy.stats import norm
 from detector import TrawlError
 from detector.calibration import (
     Calibration,
+    best_first_sample,
     brier_score,
     expected_calibration_error,
     fit_calibration,
@@ -346,6 +347,16 @@ def test_suggest_sample_spreads_over_terms_and_score_ranges():
         assert quartile == [0, 1, 2, 3]  # one pick per score quartile of the term
     assert suggest_sample(hits, 20, seed=3) == pick
     assert suggest_sample(hits, 20, seed=4) != pick
+
+
+def test_best_first_sample_takes_every_terms_best_hit_before_any_second():
+    # Hand-worked: terms a (3 hits), b (1 hit), c (2 hits), best first. Round 1 deals a1 b1 c1,
+    # round 2 a2 c2 (b has no second), round 3 a3: 5 picks stop after a2, c2.
+    ranked = [["a1", "a2", "a3"], ["b1"], ["c1", "c2"]]
+    assert best_first_sample(ranked, 2) == ["a1", "b1"]  # two terms' best, never a term's second first
+    assert best_first_sample(ranked, 5) == ["a1", "a2", "b1", "c1", "c2"]
+    assert best_first_sample(ranked, 99) == ["a1", "a2", "a3", "b1", "c1", "c2"]  # every hit, once
+    assert best_first_sample(ranked, 0) == [] and best_first_sample([], 3) == []
 
 
 def test_suggest_sample_small_and_large_n():

@@ -88,6 +88,22 @@ def test_adapt_reports_both_levers_and_stores_the_learned_rules(checked):
     assert code == 0 and "learned rules" in text
 
 
+def test_adapt_suggests_each_terms_best_hit_first_as_a_sample_to_fill_in(checked, tmp_path):
+    idx, sample = checked
+    terms = sorted({r["term"] for r in csv.DictReader(open(sample, encoding="utf-8"))})
+    (tmp_path / "terms.txt").write_text("\n".join(terms) + "\n", encoding="utf-8")
+    n = len(terms) + 3  # every term's best hit, then the second best of the first three terms
+    code, text = run("adapt", "--index", idx, "--suggest", n, "--terms", tmp_path / "terms.txt", "--out", tmp_path / "s.csv")
+    assert code == 0, text
+    rows = list(csv.DictReader(open(tmp_path / "s.csv", encoding="utf-8")))
+    assert len(rows) == n and all(r["verdict"] == "" for r in rows)
+    s = Searcher(idx)
+    expect = {(t, h.broadcast, f"{h.start:.3f}") for t in terms for h in s.search(t, top=2)[: 2 if t in terms[:3] else 1]}
+    assert {(r["term"], r["broadcast"], r["start"]) for r in rows} == expect  # the searches' own top hits
+    code, text = run("adapt", "--index", idx)
+    assert code == 1 and "--checked" in text and "Traceback" not in text
+
+
 @pytest.mark.slow
 def test_search_applies_stored_learned_rules_unless_told_not_to(checked):
     from detector.rule_learning import LEARNED_RULES_FILE, LearnedRules

@@ -12,9 +12,11 @@ ranks all (token, type) pairs together (CONTRACTS.md, "Embeddings and evaluation
      spellings through the archivist's rules file models/rules/mboshi-respelled.rules.
    Rules recovery = MAP(c) / MAP(a). Then query-side adaptation without the rules
    (CONTRACTS.md, "Language reach"): the types are dealt into halves A and B; an
-   archivist searches the proxy spellings of A's types and checks the top hits by ear
-   (verdicts from the true labels) until the checked sample holds --hits hits; a query
-   map is fitted on them and MAP on B's proxy spellings is measured before and after.
+   archivist searches the proxy spellings of A's types and checks hits by ear (verdicts
+   from the true labels) until the checked sample holds --hits hits: by default the ones
+   `trawl adapt --suggest` proposes (each type's best hit first), with --per-term K each
+   type's K best; `trawl adapt`'s two levers are fitted on them and MAP on B's proxy
+   spellings is measured before and after.
    Gap = MAP_B(original) - MAP_B(proxy); recovered fraction = (after - before) / gap.
 
 2. Held-out synthetic language. Pseudo-words with a Swahili letter inventory, spoken by
@@ -46,8 +48,9 @@ sys.path.insert(0, str(ROOT))
 from detector import TrawlError, api  # noqa: E402
 from detector.adaptation import MAX_TOLERATED_LOSS as TOLERATED_LOSS, fit_query_map  # noqa: E402
 from detector.letters import dequantise, quantise  # noqa: E402
-from detector.workflows import MAP_MIN_GAIN  # noqa: E402
+from detector.workflows import MAP_MIN_GAIN, MAP_SIGNIFICANCE  # noqa: E402
 from detector.rule_learning import Evidence, fit_learned_rules, heard_letters, stretch  # noqa: E402
+from detector.calibration import best_first_sample  # noqa: E402
 from detector.evaluation import average_precision  # noqa: E402
 from detector.models import load as load_models  # noqa: E402
 from detector.pooling import FRAME_SECONDS  # noqa: E402
@@ -158,17 +161,16 @@ def crossview(tokens: Tokens, queries: np.ndarray, query_types: list[str]) -> di
 
 def checked_sample(tokens: Tokens, queries: dict[str, np.ndarray], order: list[str], n_hits: int,
                    per_term: int) -> list[tuple[str, int, bool]]:
-    """The archivist's checking, simulated: for each type in ``order``, its ``per_term``
-    best tokens by cosine to its query, with verdicts from the true labels, until the
-    sample holds ``n_hits`` hits. Returns (type, token index, confirmed) per checked hit."""
-    out: list[tuple[str, int, bool]] = []
-    for t in order:
-        for i in np.argsort(-(tokens.vectors @ queries[t]), kind="stable")[:per_term]:
-            if len(out) < n_hits:
-                out.append((t, int(i), bool(tokens.types[i] == t)))
-        if len(out) >= n_hits:
-            break
-    return out
+    """The archivist's checking, simulated, with verdicts from the true labels: with ``per_term``
+    0, the sample `trawl adapt --suggest` proposes (detector.calibration.best_first_sample: each
+    type's best token, in ``order``, then each type's second, ... until ``n_hits``); otherwise the
+    ``per_term`` best tokens of each type in ``order`` until the sample holds ``n_hits`` hits (the
+    protocol of earlier releases). Returns (type, token index, confirmed) per checked hit."""
+    depth = per_term or -(-n_hits // len(order))
+    terms = order[: -(-n_hits // per_term)] if per_term else order
+    ranked = [[(t, int(i), bool(tokens.types[i] == t))
+               for i in np.argsort(-(tokens.vectors @ queries[t]), kind="stable")[:depth]] for t in terms]
+    return best_first_sample(ranked, n_hits)
 
 
 def background(tokens: Tokens, checked: list[tuple[str, int, bool]], rng: np.random.Generator) -> np.ndarray:
@@ -232,7 +234,8 @@ def adapt(tokens: Tokens, spelling_of: dict[str, str], types: list[str], n_hits:
     b_used = api.embed_spellings(b_rules if use_rules else b_spelled)
     try:
         qmap, report = fit_query_map(q, ev.vectors, ev.confirmed.astype(int), ev.terms, seed=seed,
-                                     background=ev.background_vectors, min_gain=MAP_MIN_GAIN)
+                                     background=ev.background_vectors, min_gain=MAP_MIN_GAIN,
+                                     significance=MAP_SIGNIFICANCE)
     except TrawlError as exc:  # too few hits, terms or confirmations: search keeps the identity
         out["map"] = {"refused": str(exc), "enabled": False}
         out["after_used"] = crossview(tokens, b_used, b_types)
@@ -446,7 +449,8 @@ def main(argv: list[str] | None = None) -> dict:
     ap.add_argument("--split", choices=["heldout", "dev"], default="heldout",
                     help="dev: the dev split with a second invented convention, for choosing settings")
     ap.add_argument("--hits", type=int, default=200, help="checked hits to adapt from")
-    ap.add_argument("--per-term", type=int, default=5, help="top hits checked per term")
+    ap.add_argument("--per-term", type=int, default=0,
+                    help="top hits checked per term (0: as `trawl adapt --suggest` proposes, best hit of each term first)")
     ap.add_argument("--sw-words", type=int, default=120, help="Swahili pseudo-words")
     ap.add_argument("--renditions", type=int, default=3, help="times each pseudo-word is spoken")
     ap.add_argument("--only", choices=["orthography", "language"], default=None)
