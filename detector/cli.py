@@ -329,7 +329,7 @@ def adapt_cmd(
     aligned: Optional[Path] = typer.Option(None, "--aligned", help="Also learn from a word-aligned corpus folder "
                                            "(utterances.tsv, words.tsv, audio/), e.g. a few transcribed recordings."),
     suggest_n: Optional[int] = typer.Option(None, "--suggest", help="Instead of adapting: propose this many hits to "
-                                            "check, the best hit of each term first (as many terms as possible)."),
+                                            "check: each term's two best hits first (as many terms as possible)."),
     terms_file: Optional[Path] = typer.Option(None, "--terms", help="With --suggest: the terms to draw hits for (one per line)."),
     out_file: Optional[Path] = typer.Option(None, "--out", help="With --suggest: write the sample to this CSV (default: print it)."),
     models: Optional[str] = ModelsOpt,

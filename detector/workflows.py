@@ -86,13 +86,13 @@ def suggest(index_dir: Path, terms: list[str], n: int, per_term: int = 60, model
 
 
 def suggest_for_adaptation(index_dir: Path, terms: list[str], n: int, models_dir: str | None = None) -> list[Hit]:
-    """N hits to check for `trawl adapt`: each term's best hit, then each term's second, ... (best_first_sample)."""
+    """N hits to check for `trawl adapt`: each term's two best hits, then each term's next two, ... (best_first_sample)."""
     if n <= 0:
         raise TrawlError("--suggest needs a positive number of hits")
     if not terms:
         raise TrawlError("--suggest needs terms to search for (--terms FILE)")
     searcher = Searcher(index_dir, models_dir)
-    depth = -(-n // len(terms))  # ceil: the deepest rank the sample can reach
+    depth = max(2, -(-n // len(terms)) + 1)  # the deepest rank the sample can reach, in rounds of two
     return best_first_sample([searcher.search(t, top=depth) for t in terms], n)
 
 

@@ -349,18 +349,12 @@ def test_suggest_sample_spreads_over_terms_and_score_ranges():
     assert suggest_sample(hits, 20, seed=4) != pick
 
 
-def test_best_first_sample_takes_every_terms_best_hit_before_any_second():
-    # Hand-worked: terms a (3 hits), b (1 hit), c (2 hits), best first. Round 1 deals a1 b1 c1,
-    # round 2 a2 c2 (b has no second), round 3 a3: 5 picks stop after a2, c2.
-    ranked = [["a1", "a2", "a3"], ["b1"], ["c1", "c2"]]
-    assert best_first_sample(ranked, 2) == ["a1", "b1"]  # two terms' best, never a term's second first
-    assert best_first_sample(ranked, 5) == ["a1", "a2", "b1", "c1", "c2"]
-    assert best_first_sample(ranked, 99) == ["a1", "a2", "a3", "b1", "c1", "c2"]  # every hit, once
+def test_best_first_sample_takes_every_terms_best_hits_before_any_later_ones():
+    # Hand-worked: terms a (5 hits), b (1 hit), c (3 hits), best first, two per round. Round 1
+    # deals a1 a2, b1, c1 c2; round 2 deals a3 a4, c3; round 3 a5.
+    ranked = [["a1", "a2", "a3", "a4", "a5"], ["b1"], ["c1", "c2", "c3"]]
+    assert best_first_sample(ranked, 3) == ["a1", "a2", "b1"]  # every term's best pair before any third hit
+    assert best_first_sample(ranked, 6) == ["a1", "a2", "a3", "b1", "c1", "c2"]
+    assert best_first_sample(ranked, 99) == [h for r in ranked for h in r]  # every hit, once
+    assert best_first_sample(ranked, 4, per_round=1) == ["a1", "a2", "b1", "c1"]
     assert best_first_sample(ranked, 0) == [] and best_first_sample([], 3) == []
-
-
-def test_suggest_sample_small_and_large_n():
-    hits = _hits(n_terms=3, per_term=4)
-    assert len({h.term for h in suggest_sample(hits, 3)}) == 3
-    assert len(suggest_sample(hits, 100)) == 12
-    assert suggest_sample(hits, 0) == []

@@ -14,7 +14,7 @@ ranks all (token, type) pairs together (CONTRACTS.md, "Embeddings and evaluation
    (CONTRACTS.md, "Language reach"): the types are dealt into halves A and B; an
    archivist searches the proxy spellings of A's types and checks hits by ear (verdicts
    from the true labels) until the checked sample holds --hits hits: by default the ones
-   `trawl adapt --suggest` proposes (each type's best hit first), with --per-term K each
+   `trawl adapt --suggest` proposes (each type's two best hits first), with --per-term K each
    type's K best; `trawl adapt`'s two levers are fitted on them and MAP on B's proxy
    spellings is measured before and after.
    Gap = MAP_B(original) - MAP_B(proxy); recovered fraction = (after - before) / gap.
@@ -163,10 +163,10 @@ def checked_sample(tokens: Tokens, queries: dict[str, np.ndarray], order: list[s
                    per_term: int) -> list[tuple[str, int, bool]]:
     """The archivist's checking, simulated, with verdicts from the true labels: with ``per_term``
     0, the sample `trawl adapt --suggest` proposes (detector.calibration.best_first_sample: each
-    type's best token, in ``order``, then each type's second, ... until ``n_hits``); otherwise the
+    type's two best tokens, in ``order``, then each type's next two, ... until ``n_hits``); otherwise the
     ``per_term`` best tokens of each type in ``order`` until the sample holds ``n_hits`` hits (the
     protocol of earlier releases). Returns (type, token index, confirmed) per checked hit."""
-    depth = per_term or -(-n_hits // len(order))
+    depth = per_term or max(2, -(-n_hits // len(order)) + 1)
     terms = order[: -(-n_hits // per_term)] if per_term else order
     ranked = [[(t, int(i), bool(tokens.types[i] == t))
                for i in np.argsort(-(tokens.vectors @ queries[t]), kind="stable")[:depth]] for t in terms]
@@ -450,7 +450,7 @@ def main(argv: list[str] | None = None) -> dict:
                     help="dev: the dev split with a second invented convention, for choosing settings")
     ap.add_argument("--hits", type=int, default=200, help="checked hits to adapt from")
     ap.add_argument("--per-term", type=int, default=0,
-                    help="top hits checked per term (0: as `trawl adapt --suggest` proposes, best hit of each term first)")
+                    help="top hits checked per term (0: as `trawl adapt --suggest` proposes, the two best of each term first)")
     ap.add_argument("--sw-words", type=int, default=120, help="Swahili pseudo-words")
     ap.add_argument("--renditions", type=int, default=3, help="times each pseudo-word is spoken")
     ap.add_argument("--only", choices=["orthography", "language"], default=None)
