@@ -1,12 +1,22 @@
 import sys
 from pathlib import Path
 
-import numpy as np
 import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 CORPUS = ROOT.parent / "shared" / "corpora" / "mboshi"
+RUNTIME = ("onnxruntime", "numpy", "librosa", "soundfile", "hnswlib", "typer", "rich")  # pyproject's dependencies
+
+
+def pytest_sessionstart(session):
+    """One line, not a collection traceback per module, when this interpreter lacks the project's runtime."""
+    import importlib.util
+
+    missing = [m for m in RUNTIME if importlib.util.find_spec(m) is None]
+    if missing:
+        pytest.exit(f"{sys.executable} lacks the project's runtime ({', '.join(missing)}): install it first, "
+                    "e.g. with the README's test command (pip install -e '.[test,train]')", returncode=4)
 
 
 @pytest.fixture(scope="session")
@@ -36,6 +46,7 @@ def aligned_words(corpus, utt):
 @pytest.fixture(scope="session")
 def joined_broadcast(corpus, tmp_path_factory):
     """A few corpus utterances joined into one file with 0.5 s pauses, and their word times."""
+    import numpy as np
     import soundfile as sf
 
     utts = ["mbA00002", "mbA00004", "mbA00006", "mbA00008", "mbA00009", "mbA00010"]
