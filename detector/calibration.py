@@ -668,7 +668,16 @@ def suggest_sample(hits: Sequence[Any], n: int, seed: int = 0) -> list[Any]:
     return [hits[i] for i in sorted(chosen)]
 
 
-def best_first_sample(ranked: Sequence[Sequence[Any]], n: int, per_round: int = 2) -> list[Any]:
+ADAPT_PER_ROUND = 2  # hits per term and round in an adaptation sample (best_first_sample)
+
+
+def best_first_depth(n: int, n_terms: int, per_round: int = ADAPT_PER_ROUND) -> int:
+    """How many of each term's best hits `best_first_sample` can reach when it picks ``n`` over
+    ``n_terms`` terms: whole rounds of ``per_round``, one round at least."""
+    return per_round * max(1, -(-n // (per_round * max(n_terms, 1))))
+
+
+def best_first_sample(ranked: Sequence[Sequence[Any]], n: int, per_round: int = ADAPT_PER_ROUND) -> list[Any]:
     """Choose ``n`` hits to check for adaptation: the ``per_round`` best hits of every term,
     then the next ``per_round`` of every term, and so on, terms in the order given, until ``n``
     are chosen or every hit is taken. ``ranked``: per term, its hits best first. Returns them

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from . import TrawlError
-from .calibration import Calibration, best_first_sample, fit_calibration, hit_features, reliability_svg, suggest_sample
+from .calibration import Calibration, best_first_depth, best_first_sample, fit_calibration, hit_features, reliability_svg, suggest_sample
 from .checked import read_checked, sample_hash
 from .hits import Hit
 from .letters import dequantise, quantise
@@ -73,26 +73,27 @@ def calibrate(index_dir: Path, checked: Path, target_precision: float = 0.9, dia
     return cal, diagram
 
 
-def suggest(index_dir: Path, terms: list[str], n: int, per_term: int = 60, models_dir: str | None = None,
-            seed: int = 0) -> list[Hit]:
-    """N hits to check, spread over the given terms and their score ranges."""
+def _suggest_searcher(index_dir: Path, terms: list[str], n: int, models_dir: str | None) -> Searcher:
+    """The searcher a --suggest run draws from, once its arguments are checked."""
     if n <= 0:
         raise TrawlError("--suggest needs a positive number of hits")
     if not terms:
         raise TrawlError("--suggest needs terms to search for (--terms FILE)")
-    searcher = Searcher(index_dir, models_dir)
+    return Searcher(index_dir, models_dir)
+
+
+def suggest(index_dir: Path, terms: list[str], n: int, per_term: int = 60, models_dir: str | None = None,
+            seed: int = 0) -> list[Hit]:
+    """N hits to check, spread over the given terms and their score ranges."""
+    searcher = _suggest_searcher(index_dir, terms, n, models_dir)
     pool = [h for t in terms for h in searcher.search(t, top=per_term)]
     return suggest_sample(pool, n, seed=seed)
 
 
 def suggest_for_adaptation(index_dir: Path, terms: list[str], n: int, models_dir: str | None = None) -> list[Hit]:
     """N hits to check for `trawl adapt`: each term's two best hits, then each term's next two, ... (best_first_sample)."""
-    if n <= 0:
-        raise TrawlError("--suggest needs a positive number of hits")
-    if not terms:
-        raise TrawlError("--suggest needs terms to search for (--terms FILE)")
-    searcher = Searcher(index_dir, models_dir)
-    depth = max(2, -(-n // len(terms)) + 1)  # the deepest rank the sample can reach, in rounds of two
+    searcher = _suggest_searcher(index_dir, terms, n, models_dir)
+    depth = best_first_depth(n, len(terms))
     return best_first_sample([searcher.search(t, top=depth) for t in terms], n)
 
 

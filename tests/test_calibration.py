@@ -14,6 +14,7 @@ from scipy.stats import norm
 from detector import TrawlError
 from detector.calibration import (
     Calibration,
+    best_first_depth,
     best_first_sample,
     brier_score,
     expected_calibration_error,
@@ -349,6 +350,13 @@ def test_suggest_sample_spreads_over_terms_and_score_ranges():
     assert suggest_sample(hits, 20, seed=4) != pick
 
 
+def test_suggest_sample_small_and_large_n():
+    hits = _hits(n_terms=3, per_term=4)
+    assert len({h.term for h in suggest_sample(hits, 3)}) == 3
+    assert len(suggest_sample(hits, 100)) == 12
+    assert suggest_sample(hits, 0) == []
+
+
 def test_best_first_sample_takes_every_terms_best_hits_before_any_later_ones():
     # Hand-worked: terms a (5 hits), b (1 hit), c (3 hits), best first, two per round. Round 1
     # deals a1 a2, b1, c1 c2; round 2 deals a3 a4, c3; round 3 a5.
@@ -358,3 +366,10 @@ def test_best_first_sample_takes_every_terms_best_hits_before_any_later_ones():
     assert best_first_sample(ranked, 99) == [h for r in ranked for h in r]  # every hit, once
     assert best_first_sample(ranked, 4, per_round=1) == ["a1", "a2", "b1", "c1"]
     assert best_first_sample(ranked, 0) == [] and best_first_sample([], 3) == []
+
+
+def test_best_first_depth_is_the_deepest_rank_the_sample_reaches():
+    # Hand-worked: 10 picks over 3 terms in rounds of two: 6 in round 1, 4 in round 2 (ranks 3-4).
+    assert best_first_depth(10, 3) == 4
+    assert best_first_depth(6, 3) == 2 and best_first_depth(7, 3) == 4
+    assert best_first_depth(1, 50) == 2  # one round at least

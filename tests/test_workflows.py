@@ -88,7 +88,7 @@ def test_adapt_reports_both_levers_and_stores_the_learned_rules(checked):
     assert code == 0 and "learned rules" in text
 
 
-def test_adapt_suggests_each_terms_best_hit_first_as_a_sample_to_fill_in(checked, tmp_path):
+def test_adapt_suggests_each_terms_best_hits_first_as_a_sample_to_fill_in(checked, tmp_path):
     idx, sample = checked
     terms = sorted({r["term"] for r in csv.DictReader(open(sample, encoding="utf-8"))})
     (tmp_path / "terms.txt").write_text("\n".join(terms) + "\n", encoding="utf-8")

@@ -50,7 +50,7 @@ from detector.adaptation import MAX_TOLERATED_LOSS as TOLERATED_LOSS, fit_query_
 from detector.letters import dequantise, quantise  # noqa: E402
 from detector.workflows import MAP_MIN_GAIN, MAP_SIGNIFICANCE  # noqa: E402
 from detector.rule_learning import Evidence, fit_learned_rules, heard_letters, stretch  # noqa: E402
-from detector.calibration import best_first_sample  # noqa: E402
+from detector.calibration import best_first_depth, best_first_sample  # noqa: E402
 from detector.evaluation import average_precision  # noqa: E402
 from detector.models import load as load_models  # noqa: E402
 from detector.pooling import FRAME_SECONDS  # noqa: E402
@@ -166,7 +166,7 @@ def checked_sample(tokens: Tokens, queries: dict[str, np.ndarray], order: list[s
     type's two best tokens, in ``order``, then each type's next two, ... until ``n_hits``); otherwise the
     ``per_term`` best tokens of each type in ``order`` until the sample holds ``n_hits`` hits (the
     protocol of earlier releases). Returns (type, token index, confirmed) per checked hit."""
-    depth = per_term or max(2, -(-n_hits // len(order)) + 1)
+    depth = per_term or best_first_depth(n_hits, len(order))
     terms = order[: -(-n_hits // per_term)] if per_term else order
     ranked = [[(t, int(i), bool(tokens.types[i] == t))
                for i in np.argsort(-(tokens.vectors @ queries[t]), kind="stable")[:depth]] for t in terms]
