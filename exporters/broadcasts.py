@@ -118,27 +118,33 @@ def radio(x: np.ndarray, rng, opus: bool = True) -> np.ndarray:
     return opus_round_trip(y) if opus else y
 
 
-def term_table(words, train_types: set[str]) -> list[tuple[str, str, int]]:
+def term_table(words, train_types: set[str], min_letters: int = MIN_LETTERS) -> list[tuple[str, str, int]]:
     """(term, seen/unseen, occurrences) of the long-enough types with trustworthy timings."""
     counts = Counter(w for _, s, e, w in words)
     too_long = {w for _, s, e, w in words if e - s > MAX_WORD_SECONDS}
     rows = [(w, "seen" if w in train_types else "unseen", n) for w, n in counts.items()
-            if letter_count(w) >= MIN_LETTERS and w not in too_long]
+            if letter_count(w) >= min_letters and w not in too_long]
     return sorted(rows, key=lambda r: (-r[2], r[0]))
 
 
 def build(out: Path, corpus: Path = DEFAULT_CORPUS, minutes_total: float | None = None, seed: int = 0,
-          broadcast_minutes: float = 5.0, opus: bool = True, split: str = "heldout") -> dict:
+          broadcast_minutes: float = 5.0, opus: bool = True, split: str = "heldout", utterances: list | None = None,
+          train_types: set[str] | None = None, channel=None, min_letters: int = MIN_LETTERS) -> dict:
     """Write the broadcasts, reference and terms under `out`; returns the manifest.
 
     split "heldout": the held-out utterances (benchmarks); "dev": the training run's dev
-    utterances (for fitting search settings, never the held-out ones)."""
+    utterances (for fitting search settings, never the held-out ones). `utterances` (with
+    `train_types`, the word types training saw) replaces the corpus split: another corpus's
+    held-out speakers, say. `channel(x, rng)` replaces the radio-like condition's chain."""
     out = Path(out)
-    train, held = split_by_transcript(load_corpus(corpus), HELD_OUT_FRACTION)
-    if split == "dev":
-        train, held = split_by_transcript(train, DEV_FRACTION, salt=DEV_SALT)
-    elif split != "heldout":
-        raise ValueError(f"unknown split {split!r}")
+    if utterances is not None:
+        train, held = [], list(utterances)
+    else:
+        train, held = split_by_transcript(load_corpus(corpus), HELD_OUT_FRACTION)
+        if split == "dev":
+            train, held = split_by_transcript(train, DEV_FRACTION, salt=DEV_SALT)
+        elif split != "heldout":
+            raise ValueError(f"unknown split {split!r}")
     rng = np.random.default_rng(seed)
     groups = group(choose_utterances(held, minutes_total, rng), broadcast_minutes)
     for cond in ("clean", "radio"):
@@ -148,15 +154,17 @@ def build(out: Path, corpus: Path = DEFAULT_CORPUS, minutes_total: float | None 
         name = f"heldout_{b:03d}.wav"
         x, ws, placed = join(utts, rng)
         sf.write(str(out / "clean" / name), np.clip(x, -1, 1), SR, subtype="PCM_16")
-        sf.write(str(out / "radio" / name), radio(x, rng, opus), SR, subtype="PCM_16")
+        y = radio(x, rng, opus) if channel is None else channel(x, rng)
+        sf.write(str(out / "radio" / name), np.clip(y, -1, 1), SR, subtype="PCM_16")
         words += [(name, s, e, w) for s, e, w in ws]
         broadcasts.append({"broadcast": name, "seconds": round(len(x) / SR, 3), "utterances": placed})
     with open(out / "reference.tsv", "w", encoding="utf-8", newline="") as f:
         w = csv.writer(f, delimiter="\t", lineterminator="\n")
         w.writerow(["broadcast", "start", "end", "word"])
         w.writerows((b, f"{s:.3f}", f"{e:.3f}", word) for b, s, e, word in words)
-    train_types = {w for u in train for _, _, w in u.words}
-    terms = term_table(words, train_types)
+    if train_types is None:
+        train_types = {w for u in train for _, _, w in u.words}
+    terms = term_table(words, train_types, min_letters)
     with open(out / "terms.tsv", "w", encoding="utf-8", newline="") as f:
         w = csv.writer(f, delimiter="\t", lineterminator="\n")
         w.writerow(["term", "split", "occurrences"])

@@ -15,6 +15,23 @@ import torch.nn as nn
 import torch.nn.functional as F
 
 DILATIONS = (1, 2, 4, 8, 1, 2, 4, 8)
+NORM_HALF = 75  # log-mel frames (10 ms) either side in the sliding mean subtracted from every band
+
+
+def sliding_mean_removed(feats, mask=None, half: int = NORM_HALF):
+    """Log-mel frames minus each band's mean over the frames within `half` either side.
+
+    A bounded-context cepstral-mean-style normalisation: a fixed channel colouring or gain
+    (additive in the log domain) cancels, and each output frame still depends on a bounded
+    stretch of audio. `mask` (B, T) marks real frames in a padded batch; beyond the ends of
+    the signal the mean is over the frames that exist, in training and at run time alike.
+    """
+    x = feats.transpose(1, 2)  # (B, n_mels, T)
+    m = torch.ones_like(x[:, :1]) if mask is None else mask[:, None, :].to(x.dtype)
+    k = 2 * half + 1
+    total = F.avg_pool1d(x * m, k, stride=1, padding=half, count_include_pad=True)
+    count = F.avg_pool1d(m, k, stride=1, padding=half, count_include_pad=True)
+    return (x - total / count.clamp_min(1.0 / k)).transpose(1, 2)
 
 
 class ChannelNorm(nn.Module):
@@ -47,11 +64,11 @@ class FrameEncoder(nn.Module):
         self.stem = nn.Conv1d(n_mels, channels, 5, stride=2, padding=2)
         self.blocks = nn.ModuleList(Block(channels, d) for d in dilations)
         self.out = nn.Conv1d(channels, out_dim, 1)
-        # frames of 20 ms either side that one output frame can see
-        self.receptive_frames = 1 + sum(dilations)  # output frames of context either side
+        # frames of 20 ms either side that one output frame can see (the sliding mean included)
+        self.receptive_frames = 1 + sum(dilations) + (NORM_HALF + 1) // 2
 
-    def forward(self, feats):  # (B, T, n_mels) -> (B, ceil(T/2), out_dim)
-        x = ((feats - self.mean) / self.std).transpose(1, 2)
+    def forward(self, feats, mask=None):  # (B, T, n_mels) -> (B, ceil(T/2), out_dim)
+        x = ((sliding_mean_removed(feats, mask) - self.mean) / self.std).transpose(1, 2)
         x = F.relu(self.stem(x))
         for b in self.blocks:
             x = b(x)
@@ -119,10 +136,11 @@ class LetterHead(nn.Module):
         self.inp = nn.Conv1d(frame_dim + 96, channels, 5, padding=2)
         self.blocks = nn.ModuleList(Block(channels, d) for d in (2, 4))
         self.out = nn.Conv1d(channels, n_letters + 1, 1)
-        self.receptive_frames = 2 + 2 + 4 + 2  # 20 ms frames either side, beyond the frame encoder's own
+        # 20 ms frames either side, beyond the frame encoder's own (its sliding mean included)
+        self.receptive_frames = 2 + 2 + 4 + 2 + (NORM_HALF + 1) // 2
 
-    def forward(self, frames, logmel):  # (B, T2, H), (B, T, n_mels) -> (B, T2, n_letters + 1)
-        m = F.relu(self.mel(((logmel - self.mean) / self.std).transpose(1, 2)))
+    def forward(self, frames, logmel, mask=None):  # (B, T2, H), (B, T, n_mels) -> (B, T2, n_letters + 1)
+        m = F.relu(self.mel(((sliding_mean_removed(logmel, mask) - self.mean) / self.std).transpose(1, 2)))
         x = F.relu(self.inp(torch.cat([frames.transpose(1, 2), m], dim=1)))
         for b in self.blocks:
             x = b(x)

@@ -14,6 +14,7 @@ from __future__ import annotations
 import argparse
 import os
 import pickle
+import shutil
 import subprocess
 import tempfile
 import unicodedata
@@ -36,6 +37,29 @@ LANGUAGES: dict[str, tuple[list[str], list[str]]] = {
     "fi": ("h j k l m n p r s t v".split(), "a e i o u y ä ö aa ii uu".split()),
     "hu": ("b c cs d f g gy h j k l ly m n ny p r s sz t ty v z zs".split(), "a á e é i í o ó ö ő u ú ü".split()),
     "id": ("b c d f g h j k l m n ng ny p r s t w y".split(), "a e i o u".split()),
+    "ro": ("b c d f g h j l m n p r s ș t ț v z ch".split(), "a e i o u ă â î".split()),
+    "af": ("b d f g h j k l m n p r s t v w".split(), "a e i o u aa ee oo ie oe ê".split()),
+    "et": ("h j k l m n p r s t v".split(), "a e i o u ä ö ü õ aa ee".split()),
+}
+# Voices recorded from real people, beside espeak-ng's own formant voices (engine, voice).
+# MBROLA diphone databases (Debian non-free, through espeak-ng's mb-* voices: espeak-ng's
+# spelling rules, the database's recorded diphones) and SVOX pico (Apache-2.0). The
+# licence of each is listed in the model card (exporters/model_card.py, VOICE_LICENCES).
+RECORDED: dict[str, list[tuple[str, str]]] = {
+    "es": [("mbrola", "mb-es1"), ("mbrola", "mb-es2"), ("pico", "es-ES")],
+    "it": [("mbrola", "mb-it3"), ("mbrola", "mb-it4"), ("pico", "it-IT")],
+    "pt": [("mbrola", "mb-pt1"), ("mbrola", "mb-br1"), ("mbrola", "mb-br3")],
+    "fr-fr": [("mbrola", "mb-fr1"), ("mbrola", "mb-fr4"), ("pico", "fr-FR")],
+    "de": [("mbrola", "mb-de1"), ("mbrola", "mb-de2"), ("mbrola", "mb-de4"), ("mbrola", "mb-de6"), ("pico", "de-DE")],
+    "nl": [("mbrola", "mb-nl2"), ("mbrola", "mb-nl3")],
+    "pl": [("mbrola", "mb-pl1")],
+    "cs": [("mbrola", "mb-cz1"), ("mbrola", "mb-cz2")],
+    "tr": [("mbrola", "mb-tr1"), ("mbrola", "mb-tr2")],
+    "hu": [("mbrola", "mb-hu1")],
+    "id": [("mbrola", "mb-id1")],
+    "ro": [("mbrola", "mb-ro1")],
+    "af": [("mbrola", "mb-af1")],
+    "et": [("mbrola", "mb-ee1")],
 }
 VARIANTS = ["m1", "m2", "m3", "m4", "m5", "m6", "m7", "f1", "f2", "f3", "f4", "f5", "klatt", "klatt2", "klatt3"]
 SAMPLE_RATE = 16000
@@ -75,21 +99,40 @@ def pseudo_words(lang: str, n: int, rng: np.random.Generator, exclude: set[str])
     return sorted(words)
 
 
+def available(engine: str, voice: str) -> bool:
+    """Whether this machine can speak with the voice (MBROLA databases and pico are optional packages)."""
+    if engine == "mbrola":
+        return Path("/usr/share/mbrola", voice[3:]).exists()
+    if engine == "pico":
+        return shutil.which("pico2wave") is not None
+    return shutil.which("espeak-ng") is not None
+
+
 def speak(word: str, voice: str, rate: int, pitch: int) -> np.ndarray:
+    """One word, trimmed, at 16 kHz. `voice` is an espeak-ng voice (mb-* included) or 'pico:LANG'."""
     import librosa
     import soundfile as sf
 
     with tempfile.NamedTemporaryFile(suffix=".wav") as tmp:
-        subprocess.run(["espeak-ng", "-v", voice, "-s", str(rate), "-p", str(pitch), "-w", tmp.name, word],
-                       check=True, capture_output=True)
+        if voice.startswith("pico:"):
+            cmd = ["pico2wave", "-l", voice[5:], "-w", tmp.name, word]
+        else:
+            cmd = ["espeak-ng", "-v", voice, "-s", str(rate), "-p", str(pitch), "-w", tmp.name, word]
+        subprocess.run(cmd, check=True, capture_output=True)
         x, sr = sf.read(tmp.name, dtype="float32")
+    if x.ndim > 1:
+        x = x.mean(axis=1)
     x = librosa.resample(x, orig_sr=sr, target_sr=SAMPLE_RATE)
     x, _ = librosa.effects.trim(x, top_db=35)
     return x
 
 
 def plan(voice: str, words: list[str], renditions: int, rng: np.random.Generator) -> list[list[tuple]]:
-    """Utterances of 3-6 words, each word `renditions` times; one voice variant, rate and pitch per utterance."""
+    """Utterances of 3-6 words, each word `renditions` times; one voice, rate and pitch per utterance.
+
+    Half the utterances (where the language has any) use a voice recorded from a real person.
+    """
+    recorded = [(e, v) for e, v in RECORDED.get(voice, []) if available(e, v)]
     groups = []
     for _ in range(renditions):
         order = rng.permutation(len(words))
@@ -97,6 +140,9 @@ def plan(voice: str, words: list[str], renditions: int, rng: np.random.Generator
         while i < len(order):
             size = int(rng.integers(3, 7))
             variant = f"{voice}+{VARIANTS[rng.integers(len(VARIANTS))]}"
+            if recorded and rng.random() < 0.5:
+                engine, name = recorded[rng.integers(len(recorded))]
+                variant = name if engine == "mbrola" else f"pico:{name}"
             rate, pitch = int(rng.integers(120, 190)), int(rng.integers(30, 75))
             groups.append([(words[j], variant, rate, pitch) for j in order[i:i + size]])
             i += size
@@ -150,7 +196,7 @@ def build(root: Path, words_per_language: int, renditions: int, seed: int, out: 
 if __name__ == "__main__":
     ap = argparse.ArgumentParser(description=__doc__)
     ap.add_argument("--words", type=int, default=300, help="pseudo-words per language")
-    ap.add_argument("--renditions", type=int, default=2, help="voices per word")
+    ap.add_argument("--renditions", type=int, default=3, help="voices per word")
     ap.add_argument("--seed", type=int, default=7)
     ap.add_argument("--out", type=Path, default=Path("runs/synth.pkl"))
     a = ap.parse_args()

@@ -24,6 +24,7 @@ import math
 import os
 import pickle
 import random
+import shutil
 import sys
 import time
 import unicodedata
@@ -41,9 +42,9 @@ from detector.features import log_mel  # noqa: E402
 from detector.pooling import FRAME_SECONDS, MIN_FRAMES  # noqa: E402
 from detector.spelling import symbols  # noqa: E402
 from exporters import augment  # noqa: E402
-from exporters.corpus import MAX_WORD_SECONDS, Utterance, load_audio, load_corpus, split_by_transcript  # noqa: E402
+from exporters.corpus import MAX_WORD_SECONDS, Utterance, corpus_splits, load_audio  # noqa: E402
 from exporters.edit_distance import pairwise  # noqa: E402
-from exporters.model import FrameEncoder, SpanHead, SpellingEncoder, pool  # noqa: E402
+from exporters.model import FrameEncoder, SpanHead, SpellingEncoder, pool, sliding_mean_removed  # noqa: E402
 
 SILENCE = math.log(1e-6)  # the feature value of digital silence, used to pad batches
 MARGIN, MARGIN_EDITS, TAU = 0.2, 4, 0.1
@@ -51,23 +52,39 @@ MARGIN, MARGIN_EDITS, TAU = 0.2, 4, 0.1
 
 # ---------------------------------------------------------------- data
 
-def make_item(u: Utterance, variant: int, seed: int) -> dict:
+_SOURCES: dict[str, list] = {}
+
+
+def channel_sources(pool: str) -> dict:
+    """Real music (and, for the held-out channel, real babble) for radio_chain, loaded once per process."""
+    if pool not in _SOURCES:
+        music = augment.music_sources(pool, cache=ROOT / "runs" / "music")
+        babble = ROOT.parent / "shared" / "corpora" / "urdu-broadcast"
+        noise = augment.babble_sources(babble) if pool == "held" and babble.exists() else None
+        _SOURCES[pool] = {"music": music, "noise": noise, "pool": pool}
+    return _SOURCES[pool]
+
+
+def make_item(u: Utterance, variant: int, seed: int, pool: str = "train") -> dict:
+    """Features of one utterance: variant 0 clean, any other through a random archive channel."""
     x = load_audio(u)
     f, lead = 1.0, 0.0
     if variant > 0:
-        x, f, lead = augment.radio_chain(x, np.random.default_rng(seed))
+        x, f, lead = augment.radio_chain(x, np.random.default_rng(seed), **channel_sources(pool))
     feats = log_mel(x)
     words = [(lead + s / f, lead + e / f, w) for s, e, w in u.words]
     return {"id": u.id, "speaker": u.speaker, "lang": u.lang, "feats": feats.astype(np.float16),
-            "words": words, "lead": lead}
+            "words": words, "lead": lead, "transcript": u.transcript}
 
 
 def _make(args):
     return make_item(*args)
 
 
-def build_items(utts: list[Utterance], variants: int, seed: int, workers: int = 2) -> list[dict]:
-    jobs = [(u, v, seed * 100003 + i * 7 + v) for i, u in enumerate(utts) for v in range(variants)]
+def build_items(utts: list[Utterance], variants: int, seed: int, workers: int = 2, first: int = 0,
+                pool: str = "train") -> list[dict]:
+    """Items of every utterance in variants first..variants-1 (0 is clean)."""
+    jobs = [(u, v, seed * 100003 + i * 7 + v, pool) for i, u in enumerate(utts) for v in range(first, variants)]
     if workers > 1 and len(jobs) > 50:
         with ProcessPoolExecutor(workers) as ex:
             return list(ex.map(_make, jobs, chunksize=16))
@@ -87,6 +104,55 @@ def inventory(types: list[str]) -> list[str]:
     for t in types:
         syms.update(symbols(t))
     return ["<pad>", "<unk>"] + sorted(syms)
+
+
+# ---------------------------------------------------------------- feature-domain augmentation
+
+def _mel_centres() -> np.ndarray:
+    import librosa
+
+    from detector.features import FEATURE_PARAMS as P
+
+    return librosa.mel_frequencies(P["n_mels"] + 2, fmin=P["fmin"], fmax=P["fmax"], htk=False)[1:-1]
+
+
+MEL_HZ = _mel_centres()
+
+
+def vtlp(feats: np.ndarray, alpha: float) -> np.ndarray:
+    """Vocal tract length perturbation on log-mel frames (Jaitly & Hinton, 2013): the spectrum
+    is read at frequency f / alpha, i.e. interpolated between the bands' centre frequencies."""
+    src = np.interp(MEL_HZ / alpha, MEL_HZ, np.arange(len(MEL_HZ)))
+    lo = np.floor(src).astype(int).clip(0, len(MEL_HZ) - 1)
+    hi = np.minimum(lo + 1, len(MEL_HZ) - 1)
+    w = (src - lo).astype(np.float32)
+    return feats[:, lo] * (1 - w) + feats[:, hi] * w
+
+
+def spec_augment(feats: np.ndarray, rng: random.Random, bands: int = 2, width: int = 5, times: int = 2,
+                 span: int = 6) -> np.ndarray:
+    """SpecAugment-style masks (Park et al., Interspeech 2019): a few bands and short stretches
+    set to the utterance's mean, short enough never to hide a whole word."""
+    y = feats.copy()
+    fill = y.mean()
+    for _ in range(bands):
+        w = rng.randint(0, width)
+        b = rng.randint(0, y.shape[1] - w)
+        y[:, b:b + w] = fill
+    for _ in range(times):
+        w = rng.randint(0, span)
+        t = rng.randint(0, max(0, y.shape[0] - w))
+        y[t:t + w] = fill
+    return y
+
+
+def perturb(feats: np.ndarray, rng: random.Random) -> np.ndarray:
+    """Per-utterance speaker and channel perturbation of log-mel frames: VTLP (alpha 0.88-1.12),
+    a spectral tilt and gain (additive in the log domain), SpecAugment masks."""
+    y = vtlp(feats, rng.uniform(0.88, 1.12))
+    tilt = np.linspace(-1, 1, y.shape[1], dtype=np.float32) * rng.uniform(-1.5, 1.5)
+    y = y + tilt + rng.uniform(-2, 2)
+    return spec_augment(y, rng)
 
 
 # ---------------------------------------------------------------- spans
@@ -163,9 +229,11 @@ class Model(torch.nn.Module):
         """feats_list: list of (T, 40) float arrays; spans_list: list of (a, b) frame arrays."""
         T = max(f.shape[0] for f in feats_list)
         batch = np.full((len(feats_list), T, feats_list[0].shape[1]), SILENCE, np.float32)
+        mask = np.zeros((len(feats_list), T), np.float32)
         for i, f in enumerate(feats_list):
             batch[i, : f.shape[0]] = f
-        out = self.frames(torch.from_numpy(batch))
+            mask[i, : f.shape[0]] = 1
+        out = self.frames(torch.from_numpy(batch), torch.from_numpy(mask))
         pooled = []
         for i, (f, spans) in enumerate(zip(feats_list, spans_list)):
             n = (f.shape[0] + 1) // 2
@@ -187,23 +255,67 @@ class Model(torch.nn.Module):
 
 # ---------------------------------------------------------------- batches
 
+GROUP_WEIGHTS = {"mboshi": 0.35, "arabic-commands": 0.18, "arabic-emotions": 0.07}  # the rest: synthetic, shared equally
+
+
 class Sampler:
+    """Speaker-balanced batches with cross-speaker positives.
+
+    A batch takes word types from each group (a corpus, or one synthetic language) in fixed
+    shares; for each type, two tokens spoken by different speakers where the type has more
+    than one speaker (else two different utterances), each speaker drawn first and then one
+    of their tokens, so a talkative speaker is no more likely than a quiet one. The acoustic
+    pair is then a cross-speaker positive.
+    """
+
     def __init__(self, items, rng: random.Random):
         self.items, self.rng = items, rng
-        self.by_type: dict[str, list[int]] = {}
+        self.by_type: dict[str, dict[str, list[int]]] = {}  # type -> speaker -> item indices
+        group_of: dict[str, str] = {}
         for i, it in enumerate(items):
             for _, _, w in word_frames(it):
-                self.by_type.setdefault(w, []).append(i)
-        self.multi = [t for t, v in self.by_type.items() if len({items[i]["id"] for i in v}) >= 2]
+                self.by_type.setdefault(w, {}).setdefault(it["speaker"], []).append(i)
+                group_of.setdefault(w, it["lang"])
+        multi = [t for t, v in self.by_type.items() if len({items[i]["id"] for s in v.values() for i in s}) >= 2]
+        self.groups: dict[str, list[str]] = {}
+        for t in multi:
+            self.groups.setdefault(group_of[t], []).append(t)
+        synth = [g for g in self.groups if g not in GROUP_WEIGHTS]
+        w = {g: GROUP_WEIGHTS[g] for g in self.groups if g in GROUP_WEIGHTS}
+        rest = max(0.0, 1.0 - sum(w.values()))
+        w.update({g: rest / len(synth) for g in synth})
+        self.names = sorted(self.groups)
+        self.weights = [w[g] or 1e-9 for g in self.names]
+        self.multi = multi
+        self.by_group_items: dict[str, list[int]] = {}
+        for i, it in enumerate(items):
+            self.by_group_items.setdefault(it["lang"], []).append(i)
+
+    def pair(self, t: str) -> tuple[int, int]:
+        speakers = self.by_type[t]
+        names = list(speakers)
+        if len(names) >= 2:
+            s1, s2 = self.rng.sample(names, 2)
+            return self.rng.choice(speakers[s1]), self.rng.choice(speakers[s2])
+        opts = speakers[names[0]]
+        first = self.rng.choice(opts)
+        others = [i for i in opts if self.items[i]["id"] != self.items[first]["id"]] or opts
+        return first, self.rng.choice(others)
 
     def batch(self, n_pairs=18, n_random=10):
-        chosen: list[int] = []
-        for t in self.rng.sample(self.multi, min(n_pairs, len(self.multi))):
-            opts = self.by_type[t]
-            first = self.rng.choice(opts)
-            others = [i for i in opts if self.items[i]["id"] != self.items[first]["id"]] or opts
-            chosen += [(first, t), (self.rng.choice(others), t)]
-        chosen += [(i, None) for i in self.rng.sample(range(len(self.items)), min(n_random, len(self.items)))]
+        chosen: list = []
+        seen: set[str] = set()
+        for _ in range(min(n_pairs, len(self.multi))):
+            g = self.rng.choices(self.names, self.weights)[0]
+            t = self.rng.choice(self.groups[g])
+            if t in seen:
+                continue
+            seen.add(t)
+            a, b = self.pair(t)
+            chosen += [(a, t), (b, t)]
+        groups = list(self.by_group_items)
+        for _ in range(min(n_random, len(self.items))):
+            chosen.append((self.rng.choice(self.by_group_items[self.rng.choice(groups)]), None))
         return chosen
 
 
@@ -240,10 +352,12 @@ def crop(item, target: str | None, rng: random.Random):
     return feats[s0:s0 + CROP], kept, sub
 
 
-def step_loss(model, items, idx, table, letters, rng: random.Random):
+def step_loss(model, items, idx, table, letters, rng: random.Random, augment_features: bool = True):
     feats, spans, tok_types, n_tok = [], [], [], []
     for i, target in idx:
         f, wf, sub = crop(items[i], target, rng)
+        if augment_features:
+            f = perturb(f.astype(np.float32), rng)
         jit = [(a + rng.randint(-1, 1), b + rng.randint(-1, 1), w) for a, b, w in wf]
         nw = nonword_spans(sub, rng)
         if not jit and not nw:
@@ -327,6 +441,31 @@ def validate(model, items, table, min_letters=5, limit=1500):
     return {"acoustic_ap": ap_aa, "crossview_ap": ap_as, "tokens": len(y)}
 
 
+def validate_groups(model, dev: dict, table, limit=800) -> dict:
+    """validate() on each dev group (tokens of at least 4 letters); 'score' is the mean over
+    groups of acoustic + cross-view AP, the model-selection criterion."""
+    out, scores = {}, []
+    for name, items in dev.items():
+        v = validate(model, items, table, min_letters=4, limit=limit)
+        out[name] = {k: round(x, 4) if isinstance(x, float) else x for k, x in v.items()}
+        if v["tokens"] >= 2:
+            scores.append(v["acoustic_ap"] + v["crossview_ap"])
+    out["score"] = float(np.mean(scores)) if scores else 0.0
+    return out
+
+
+def quick_synthetic(path: Path) -> list[Utterance]:
+    """A handful of espeak-ng utterances (two languages, 24 pseudo-words) for the quick run
+    when no corpus is at hand."""
+    if not path.exists():
+        from exporters import synth
+
+        if shutil.which("espeak-ng") is None:
+            return []
+        synth.build(ROOT, 12, 2, 3, path, languages=["es", "de"])
+    return synthetic_utterances(path)
+
+
 # ---------------------------------------------------------------- main
 
 def save(obj, path: Path):
@@ -337,7 +476,8 @@ def save(obj, path: Path):
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("--corpus", type=Path, default=ROOT.parent / "shared" / "corpora" / "mboshi")
+    ap.add_argument("--corpora", type=Path, default=ROOT.parent / "shared" / "corpora",
+                    help="the shared corpora (exporters/corpus.py CORPUS_ROLES says how each is used)")
     ap.add_argument("--synth", type=Path, default=None, help="synthetic speech from exporters/synth.py")
     ap.add_argument("--out", type=Path, default=ROOT / "models")
     ap.add_argument("--work", type=Path, default=ROOT / "runs")
@@ -352,27 +492,39 @@ def main(argv=None):
     torch.set_num_threads(2)
     a.work.mkdir(parents=True, exist_ok=True)
     t0 = time.time()
-    utts = load_corpus(a.corpus)
-    train_u, held_u = split_by_transcript(utts, 0.1)
-    train_u, dev_u = split_by_transcript(train_u, 0.05, salt="trawl-dev-1")
+    splits = corpus_splits(a.corpora, limit=24 if a.quick else None) if a.corpora.exists() else {}
+    train_u = [u for parts in splits.values() for u in parts.get("train", [])]
+    dev_u = {name: parts["dev"] for name, parts in splits.items() if parts.get("dev")}
+    held_n = sum(len(parts.get("held", [])) for parts in splits.values())
     if a.quick:
-        train_u, dev_u, a.variants, a.minutes = train_u[:24], dev_u[:8], 1, 0.6
-    synth = synthetic_utterances(a.synth) if a.synth and not a.quick else []
-    cache = a.work / ("items-quick.pkl" if a.quick else f"items-v{a.variants}-{len(synth)}.pkl")
+        a.variants, a.minutes = 2, 0.6
+    synth = synthetic_utterances(a.synth) if a.synth else []
+    if a.quick and not synth:  # no synthetic speech given: a few utterances made here (espeak-ng)
+        synth = quick_synthetic(a.work / "quick-synth.pkl")
+    if not train_u and not synth:
+        raise SystemExit("no training data: neither ../shared/corpora nor --synth, and espeak-ng is missing")
+    cache = a.work / ("items-quick.pkl" if a.quick else f"items2-v{a.variants}-{len(train_u)}-{len(synth)}.pkl")
     if cache.exists() and not a.quick:
         items, dev = pickle.load(open(cache, "rb"))
     else:
         items = build_items(train_u, a.variants, a.seed) + build_items(synth, 2, a.seed + 1)
-        dev = build_items(dev_u, 1, 0)
+        dev = {name: build_items(us, 1, 0) for name, us in dev_u.items()}
+        if "mboshi" in dev_u:  # the seen voices through a (training-pool) archive channel
+            dev["mboshi-radio"] = build_items(dev_u["mboshi"], 2, 5, first=1)
+        if not dev:
+            held = [u for u in synth if hash(u.id) % 10 == 0]
+            dev = {"synthetic": build_items(held[:8] or synth[:8], 1, 0)}
         if not a.quick:
             pickle.dump((items, dev), open(cache, "wb"))
-    print(f"data: {len(items)} items, dev {len(dev)} in {time.time() - t0:.0f}s", flush=True)
+    print(f"data: {len(items)} items, dev {sum(map(len, dev.values()))} in {time.time() - t0:.0f}s", flush=True)
     all_types = sorted({w for it in items for *_, w in it["words"]})
     inv = inventory(all_types)
     table = {c: i for i, c in enumerate(inv)}
     letters = [c for c in inv[2:] if c.isalpha()]
-    feats = np.concatenate([it["feats"][::10].astype(np.float32) for it in items[: 2000]])
     model = Model(len(inv))
+    with torch.no_grad():
+        feats = np.concatenate([sliding_mean_removed(torch.from_numpy(it["feats"][None].astype(np.float32)))[0, ::10].numpy()
+                                for it in rng.sample(items, min(2000, len(items)))])
     model.frames.mean.copy_(torch.from_numpy(feats.mean(0)))
     model.frames.std.copy_(torch.from_numpy(feats.std(0) + 1e-3))
     opt = torch.optim.AdamW(model.parameters(), lr=2e-3, weight_decay=1e-4)
@@ -388,7 +540,7 @@ def main(argv=None):
     def probe_loss():
         with torch.no_grad():
             model.eval()
-            value = step_loss(model, items, probe, table, letters, random.Random(0))[0].item()
+            value = step_loss(model, items, probe, table, letters, random.Random(0), augment_features=False)[0].item()
             model.train()
         return value
 
@@ -410,19 +562,19 @@ def main(argv=None):
         losses.append(loss.item())
         step += 1
         if step % eval_every == 0:
-            v = validate(model, dev, table, limit=300 if a.quick else 1500)
+            v = validate_groups(model, dev, table, limit=300 if a.quick else 800)
             history.append({"step": step, "loss": float(np.mean(losses[-eval_every:])), **v,
                             "minutes": (time.time() - t_train) / 60})
             print(json.dumps(history[-1]), flush=True)
             state = {"model": model.state_dict(), "opt": opt.state_dict(), "step": step, "best": best,
                      "history": history, "inventory": inv}
-            score = v["acoustic_ap"] + v["crossview_ap"]
+            score = v["score"]
             if score > best:
                 best = state["best"] = score
                 save(state, a.work / ("quick-best.pt" if a.quick else "best.pt"))
             save(state, ckpt)
     if not history or history[-1]["step"] != step:
-        v = validate(model, dev, table, limit=300 if a.quick else 1500)
+        v = validate_groups(model, dev, table, limit=300 if a.quick else 800)
         history.append({"step": step, "loss": float(np.mean(losses[-20:])), **v, "minutes": (time.time() - t_train) / 60})
         print(json.dumps(history[-1]), flush=True)
     wall = (time.time() - t0) / 60
@@ -436,9 +588,12 @@ def main(argv=None):
     final["card"] = export(model_from_state(final), inv, a.out, {
         "command": " ".join(["python", "-m", "exporters.train"] + (argv if argv is not None else sys.argv[1:])),
         "wall_minutes": round(wall, 1), "steps": step, "history": history,
-        "train_utterances": len(train_u), "dev_utterances": len(dev_u), "heldout_utterances": len(held_u),
+        "train_utterances": len(train_u), "dev_utterances": sum(map(len, dev_u.values())), "heldout_utterances": held_n,
         "synthetic_utterances": len(synth), "variants": a.variants,
         "synthetic_languages": sorted({u.lang for u in synth}),
+        "synthetic_voices": sorted({u.speaker.split("+")[0] for u in synth}),
+        "corpora": {name: {part: {"utterances": len(us), "speakers": len({u.speaker for u in us})}
+                           for part, us in parts.items()} for name, parts in splits.items()},
     })
     return final
 

@@ -31,10 +31,10 @@ sys.path.insert(0, str(ROOT))
 
 from detector.letters import alphabet_of, letter_ids  # noqa: E402
 from detector.models import Models  # noqa: E402
-from exporters.corpus import load_corpus, split_by_transcript  # noqa: E402
+from exporters.corpus import corpus_splits  # noqa: E402
 from exporters.edit_distance import pairwise  # noqa: E402
-from exporters.model import LetterHead  # noqa: E402
-from exporters.train import build_items, synthetic_utterances  # noqa: E402
+from exporters.model import LetterHead, sliding_mean_removed  # noqa: E402
+from exporters.train import build_items, perturb, quick_synthetic, synthetic_utterances  # noqa: E402
 
 SILENCE = math.log(1e-6)
 
@@ -45,7 +45,11 @@ def prepare(items, models: Models, table: dict) -> list[dict]:
     for it in items:
         feats = it["feats"].astype(np.float32)
         words = sorted(it["words"])
-        target = [i for _, _, w in words for i in letter_ids(w, table)]
+        if words:
+            target = [i for _, _, w in words for i in letter_ids(w, table)]
+        else:  # a transcript without word times; one with digits is not spelled as it is read
+            text = it.get("transcript", "")
+            target = [] if any(c.isdigit() for c in text) else letter_ids(" ".join(text.lower().split()), table)
         frames = models.frames(feats)
         if not target or len(target) > len(frames):
             continue
@@ -58,13 +62,16 @@ def batch(data, idx):
     T = max(len(data[i]["feats"]) for i in idx)
     fr = np.zeros((len(idx), T2, data[idx[0]]["frames"].shape[1]), np.float32)
     lm = np.full((len(idx), max(T, 2 * T2 - 1), data[idx[0]]["feats"].shape[1]), SILENCE, np.float32)
+    mask = np.zeros(lm.shape[:2], np.float32)
     for k, i in enumerate(idx):
         d = data[i]
         fr[k, : len(d["frames"])] = d["frames"]
         lm[k, : len(d["feats"])] = d["feats"]
+        mask[k, : len(d["feats"])] = 1
     lens = torch.tensor([len(data[i]["frames"]) for i in idx])
     tg = [torch.tensor(data[i]["target"]) for i in idx]
-    return torch.from_numpy(fr), torch.from_numpy(lm), lens, torch.cat(tg), torch.tensor([len(t) for t in tg])
+    return (torch.from_numpy(fr), torch.from_numpy(lm), lens, torch.cat(tg), torch.tensor([len(t) for t in tg]),
+            torch.from_numpy(mask))
 
 
 def greedy(logp: np.ndarray) -> list[int]:
@@ -78,8 +85,8 @@ def letter_error_rate(head, data) -> float:
     errs = total = 0
     for s in range(0, len(data), 32):
         idx = list(range(s, min(len(data), s + 32)))
-        fr, lm, lens, _, _ = batch(data, idx)
-        lp = head(fr, lm).numpy()
+        fr, lm, lens, _, _, mask = batch(data, idx)
+        lp = head(fr, lm, mask).numpy()
         for k, i in enumerate(idx):
             errs += int(pairwise([greedy(lp[k, : lens[k]])], [data[i]["target"]])[0, 0])
             total += len(data[i]["target"])
@@ -106,7 +113,9 @@ def export(head, models_dir: Path, alphabet: list[str], training: dict) -> dict:
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("--corpus", type=Path, default=ROOT.parent / "shared" / "corpora" / "mboshi")
+    ap.add_argument("--corpora", type=Path, default=ROOT.parent / "shared" / "corpora",
+                    help="the shared corpora: every transcribed one but the unseen language (exporters/corpus.py)")
+    ap.add_argument("--no-augment", dest="augment", action="store_false", help="no VTLP, tilt or masks")
     ap.add_argument("--synth", type=Path, default=None)
     ap.add_argument("--models", type=Path, default=ROOT / "models", help="folder with the exported encoders; the head is added there")
     ap.add_argument("--minutes", type=float, default=25.0)
@@ -121,16 +130,23 @@ def main(argv=None):
     models = Models(a.models)
     alphabet = alphabet_of(models.symbols)
     table = {c: i + 1 for i, c in enumerate(alphabet)}
-    train_u, _held = split_by_transcript(load_corpus(a.corpus), 0.1)
-    train_u, dev_u = split_by_transcript(train_u, 0.05, salt="trawl-dev-1")
+    splits = corpus_splits(a.corpora, limit=24 if a.quick else None) if a.corpora.exists() else {}
+    train_u = [u for parts in splits.values() for key in ("train", "letters") for u in parts.get(key, [])]
+    dev_u = [u for parts in splits.values() for u in parts.get("dev", [])]
     if a.quick:
-        train_u, dev_u, a.variants, a.minutes = train_u[:24], dev_u[:8], 1, 0.4
-    synth = synthetic_utterances(a.synth) if a.synth and not a.quick else []
+        a.variants, a.minutes = 1, 0.4
+    synth = synthetic_utterances(a.synth) if a.synth else []
+    if a.quick and not synth:
+        synth = quick_synthetic(ROOT / "runs" / "quick-synth.pkl")
+    if not dev_u:  # no corpus at hand: a few synthetic utterances stand in for the dev split
+        dev_u, synth = synth[:6], synth[6:]
     data = prepare(build_items(train_u, a.variants, a.seed) + build_items(synth, 2, a.seed + 1), models, table)
     dev = prepare(build_items(dev_u, 1, 0), models, table)
     print(f"data: {len(data)} utterances, dev {len(dev)}, {time.time() - t0:.0f}s", flush=True)
     head = LetterHead(len(alphabet), frame_dim=models.card["frame_dim"])
-    mels = np.concatenate([d["feats"][::10].astype(np.float32) for d in data[:2000]])
+    with torch.no_grad():
+        mels = np.concatenate([sliding_mean_removed(torch.from_numpy(d["feats"][None].astype(np.float32)))[0, ::10].numpy()
+                               for d in data[:2000]])
     head.mean.copy_(torch.from_numpy(mels.mean(0)))
     head.std.copy_(torch.from_numpy(mels.std(0) + 1e-3))
     opt = torch.optim.AdamW(head.parameters(), lr=2e-3, weight_decay=1e-4)
@@ -142,8 +158,10 @@ def main(argv=None):
         frac = (time.time() - t_train) / budget
         for g in opt.param_groups:
             g["lr"] = 2e-3 * min(1.0, (step + 1) / 100) * (0.05 + 0.95 * 0.5 * (1 + math.cos(math.pi * frac)))
-        fr, lm, lens, tg, tl = batch(data, rng.choice(chunks))
-        lp = head(fr, lm)
+        fr, lm, lens, tg, tl, mask = batch(data, rng.choice(chunks))
+        if a.augment:  # the encoders' feature-domain perturbation, on the head's own view of the features
+            lm = torch.from_numpy(np.stack([perturb(x, rng) for x in lm.numpy()]))
+        lp = head(fr, lm, mask)
         loss = F.ctc_loss(lp.transpose(0, 1), tg, lens, tl, blank=0, zero_infinity=True)
         opt.zero_grad()
         loss.backward()
@@ -164,6 +182,7 @@ def main(argv=None):
         "command": " ".join(["python", "-m", "exporters.train_letters"] + (argv if argv is not None else sys.argv[1:])),
         "steps": step, "wall_minutes": round((time.time() - t0) / 60, 1), "history": history,
         "train_utterances": len(data), "dev_utterances": len(dev), "synthetic_languages": sorted({u.lang for u in synth}),
+        "corpora": sorted({u.lang for u in train_u}),
         "dev_letter_error_untrained": round(before, 4), "dev_letter_error": round(after, 4)})
     print(f"dev letter error {before:.3f} -> {after:.3f}; wrote {a.models / 'letter_head.onnx'}")
     return card

@@ -5,7 +5,8 @@ import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
-CORPUS = ROOT.parent / "shared" / "corpora" / "mboshi"
+CORPORA = ROOT.parent / "shared" / "corpora"
+CORPUS = CORPORA / "mboshi"
 RUNTIME = ("onnxruntime", "numpy", "librosa", "soundfile", "hnswlib", "typer", "rich")  # pyproject's dependencies
 
 
