@@ -486,5 +486,42 @@ def status_cmd(index: Path = IndexOpt):
     out.print(t)
 
 
+# ----------------------------------------------------------------- check
+@app.command("check")
+@friendly
+def check_cmd(
+    sample: Path = typer.Argument(..., help="A hit-list CSV to check: a search's --csv, or a --suggest sample."),
+    index: Path = IndexOpt,
+    no_browser: bool = typer.Option(False, "--no-browser", help="Only print the page's address; do not open a browser."),
+    port: int = typer.Option(0, "--port", help="Port on 127.0.0.1 to serve the page on (default: any free port)."),
+    archive: Optional[Path] = typer.Option(None, "--archive", help="The archive folder (default: the one recorded in the index)."),
+):
+    """Listen to each hit of a sample on a local page and mark it yes or no.
+
+    Every verdict is written into SAMPLE at once; run the same command again to carry on
+    where you stopped. The page is served on 127.0.0.1 only, at an address holding a secret.
+    Press Ctrl-C to stop.
+    """
+    from .check_server import address, bind, open_session, serve
+
+    session = open_session(sample, index, archive)
+    sock = bind(port)
+    url = address(session, sock)
+    print(url, flush=True)  # on a line of its own, first: scripts wait for it
+    done = sum(v is not None for v in session.sample.verdicts())
+    err.print(f"checking {sample}: {done} of {len(session.sample.rows)} hits checked so far; Ctrl-C stops",
+              highlight=False, soft_wrap=True)
+    if not no_browser:
+        import webbrowser
+
+        if not webbrowser.open(url):
+            err.print("could not open a browser: open the address above yourself", highlight=False)
+    serve(session, sock)
+    v = session.sample.verdicts()
+    err.print(f"stopped: {sum(x is not None for x in v)} of {len(v)} hits checked "
+              f"({sum(x is True for x in v)} yes, {sum(x is False for x in v)} no), all saved in {sample}",
+              highlight=False, soft_wrap=True)
+
+
 def main():  # pragma: no cover
     app()
