@@ -90,3 +90,17 @@ def check_archive(tmp_path_factory):
     sample = root / "sample.csv"
     write_csv(hits, sample, calibrated=False)
     return archive, index, sample
+
+
+def start_check(check_archive, folder):
+    """`trawl check COPY_OF_SAMPLE --index IDX --no-browser` in a subprocess: (process, first stdout line, copy)."""
+    import shutil
+    import subprocess
+
+    _, index, sample = check_archive
+    mine = folder / "sample.csv"
+    shutil.copy(sample, mine)
+    proc = subprocess.Popen([sys.executable, "-c", "from detector.cli import app; app()", "check", str(mine),
+                             "--index", str(index), "--no-browser"], cwd=ROOT, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    return proc, proc.stdout.readline().strip(), mine

@@ -13,8 +13,6 @@ import re
 import shutil
 import signal
 import socket
-import subprocess
-import sys
 import time
 import urllib.request
 
@@ -26,11 +24,10 @@ pytest.importorskip("starlette", reason="trawl check needs starlette (pip instal
 pytest.importorskip("httpx", reason="starlette's test client needs httpx (pip install -e '.[test]')")
 from starlette.testclient import TestClient  # noqa: E402
 
+from conftest import start_check  # noqa: E402
 from detector.check_server import MAX_POST_BYTES, Session, bind, make_app, open_session  # noqa: E402
 from detector.checked import read_checked  # noqa: E402
 from detector.checking import CheckFile, png_bytes, searched_form, spectrogram_image  # noqa: E402
-
-ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
 
 def sha(path):
@@ -294,14 +291,8 @@ def test_binds_to_loopback_only():
 
 
 def test_the_command_prints_the_address_first_serves_and_stops_on_ctrl_c(check_archive, tmp_path):
-    archive, index, sample = check_archive
-    mine = tmp_path / "sample.csv"
-    shutil.copy(sample, mine)
-    proc = subprocess.Popen([sys.executable, "-c", "from detector.cli import app; app()", "check", str(mine),
-                             "--index", str(index), "--no-browser"], cwd=ROOT, stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True)
+    proc, first, _ = start_check(check_archive, tmp_path)
     try:
-        first = proc.stdout.readline().strip()
         m = re.fullmatch(r"http://127\.0\.0\.1:(\d+)/([A-Za-z0-9_-]{20,})/", first)
         assert m, first
         for _ in range(50):  # the address is printed before uvicorn starts accepting

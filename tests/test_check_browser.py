@@ -5,12 +5,9 @@ browser loads it, plays a clip, marks hits with the keyboard, reloads, and the C
 read back by the checked-sample reader that `trawl calibrate` and `trawl adapt` use.
 """
 
-import os
 import re
 import shutil
 import signal
-import subprocess
-import sys
 
 import pytest
 
@@ -20,9 +17,9 @@ from selenium.webdriver.common.by import By  # noqa: E402
 from selenium.webdriver.common.keys import Keys  # noqa: E402
 from selenium.webdriver.support.ui import WebDriverWait  # noqa: E402
 
+from conftest import start_check  # noqa: E402
 from detector.checked import read_checked  # noqa: E402
 
-ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 DRIVER = shutil.which("chromedriver")
 
@@ -47,13 +44,7 @@ def browser():
 @pytest.fixture
 def served(check_archive, tmp_path):
     """`trawl check SAMPLE --index IDX --no-browser` running; its address and the sample's path."""
-    archive, index, sample = check_archive
-    mine = tmp_path / "sample.csv"
-    shutil.copy(sample, mine)
-    proc = subprocess.Popen([sys.executable, "-c", "from detector.cli import app; app()", "check", str(mine),
-                             "--index", str(index), "--no-browser"], cwd=ROOT, stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True)
-    url = proc.stdout.readline().strip()
+    proc, url, mine = start_check(check_archive, tmp_path)
     assert re.fullmatch(r"http://127\.0\.0\.1:\d+/\S+/", url), url
     yield url, mine
     proc.send_signal(signal.SIGINT)
