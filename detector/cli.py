@@ -405,7 +405,7 @@ def rules_set(file: Path = typer.Argument(..., help="Rules file (see the README 
 
 @rules_app.command("show")
 @friendly
-def rules_show(index: Path = IndexOpt, term: Optional[str] = typer.Option(None, "--try", help="Show how the rules rewrite this term.")):
+def rules_show(index: Path = IndexOpt, term: Optional[str] = typer.Option(None, "--try", help="Show how the stored rules rewrite this term (`trawl rules try` also shows the learned rules).")):
     """Show the rules stored in the index (and try them on a term)."""
     from .index_store import Index
     from .rules import parse_rules
@@ -418,6 +418,64 @@ def rules_show(index: Path = IndexOpt, term: Optional[str] = typer.Option(None, 
     out.print(rs.to_text())
     if term:
         out.print(f"{term} -> {rs.apply(term)}")
+
+
+@rules_app.command("try")
+@friendly
+def rules_try(
+    words: List[str] = typer.Argument(..., help="Words to respell, as you would type them."),
+    rules: Optional[Path] = typer.Option(None, "--rules", help="A rules file to try before storing it (default: the index's stored rules)."),
+    index: Optional[Path] = typer.Option(None, "--index", "-i", help="An index: its stored rules (unless --rules) and its learned rules."),
+    models: Optional[str] = ModelsOpt,
+):
+    """Show how a word is respelled before search: your rules, then the learned ones.
+
+    Warns about letters and signs the model does not know (they are not heard as written).
+    """
+    import unicodedata
+
+    from .models import load
+    from .rules import load_rules, parse_rules
+    from .spelling import check_term
+
+    if rules is None and index is None:
+        raise TrawlError("give a rules file with --rules FILE, an index with --index DIR, or both")
+    idx = None
+    if index is not None:
+        from .index_store import Index
+
+        idx = Index.open(index)
+    yours = load_rules(rules) if rules else None
+    if yours is None and idx is not None and idx.read_text("rules.txt"):
+        yours = parse_rules(idx.read_text("rules.txt"), "rules stored in the index")
+    learned, learned_on = None, False
+    if idx is not None:
+        from .rule_learning import LEARNED_RULES_FILE, LearnedRules
+
+        lr = idx.read_setting(LEARNED_RULES_FILE)
+        if lr:
+            stored = LearnedRules.from_dict(lr)
+            learned, learned_on = stored.ruleset(), stored.enabled
+    known = set(load(models).symbols)
+    t = Table(title="Respelling (search reads the last column)")
+    for c in ("typed", "your rules" if yours else "your rules (none)",
+              "learned rules" + ("" if learned is None else " (on)" if learned_on else " (off: not applied)"),
+              "searched as", "not known to the model"):
+        t.add_column(c, overflow="fold")
+    warn = False
+    for word in words:
+        typed = check_term(word)
+        first = yours.apply(typed) if yours else typed
+        second = learned.apply_or_keep(first) if learned is not None else first
+        final = second if learned_on else first
+        unknown = sorted({c for c in unicodedata.normalize("NFD", final) if not c.isspace() and c not in known})
+        warn = warn or bool(unknown)
+        t.add_row(typed, first, second if learned is not None else "-", final,
+                  " ".join(f"{c!r} (U+{ord(c):04X})" for c in unknown))
+    out.print(t)
+    if warn:
+        out.print("[yellow]warning:[/] the model does not read some signs above; write rules that replace "
+                  "them with letters it knows (the model card's symbols)", highlight=False)
 
 
 @rules_app.command("clear")
