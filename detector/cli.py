@@ -638,5 +638,54 @@ def check_cmd(
               highlight=False, soft_wrap=True)
 
 
+# ----------------------------------------------------------------- help text
+def _plain_help_types() -> None:
+    """Help shows a word for what an option takes (FILE, DIR, N...) and nothing on a flag, instead of
+    typer's Python types (<bool>, <list[Path]>). Set once here, so every command gets it."""
+    import inspect
+
+    from typer.models import ArgumentInfo, OptionInfo
+
+    folders = {"index", "archive", "clips", "aligned", "models", "archive_dir"}
+
+    def word(name: str, annotation: str, is_argument: bool) -> str:
+        a = str(annotation)
+        if "bool" in a:
+            return ""
+        many = "List" in a or "list" in a
+        if name in folders:
+            w = "DIR"
+        elif "Path" in a:
+            w = "FILE"
+        elif "int" in a:
+            w = "N"
+        elif "float" in a:
+            w = "NUMBER"
+        else:
+            w = "TEXT"
+        if is_argument:  # the usage line adds "..." to an argument that takes several
+            w = name.upper().rstrip("S") if many else name.upper()
+        return w  # a repeatable option says so in its help
+
+    groups = [app] + [g.typer_instance for g in app.registered_groups]
+    for group in groups:
+        for command in group.registered_commands:
+            for name, p in inspect.signature(command.callback).parameters.items():
+                info = p.default
+                if isinstance(info, (OptionInfo, ArgumentInfo)) and info.metavar is None:
+                    info.metavar = word(name, p.annotation, isinstance(info, ArgumentInfo))
+    try:  # an argument's type column ignores its metavar in typer >= 0.2x: show the metavar alone
+        from typer.core import TyperArgument, TyperOption
+
+        TyperArgument.display_type_rich = lambda self, ctx: None if self.metavar is not None else self.display_type(ctx)
+        shown = TyperOption.display_type_rich
+        TyperOption.display_type_rich = lambda self, ctx: None if self.is_flag else shown(self, ctx)  # --help too
+    except (ImportError, AttributeError):  # pragma: no cover - older typer prints no types
+        pass
+
+
+_plain_help_types()
+
+
 def main():  # pragma: no cover
     app()
