@@ -329,3 +329,16 @@ def test_a_sample_that_is_not_a_hit_list_is_refused_in_one_line(check_archive, t
     r = CliRunner().invoke(app, ["check", str(other), "--index", str(check_archive[1]), "--no-browser"])
     text = r.stdout + (r.stderr if r.stderr_bytes is not None else "")
     assert r.exit_code == 1 and "news/friday.wav is not in the index" in text
+
+
+def test_clips_written_inside_the_archive_are_not_indexed_as_broadcasts(check_archive, tmp_path):
+    from detector.clips import write_clips
+    from detector.hits import Hit
+    from detector.indexing import find_audio
+
+    archive = tmp_path / "archive"
+    shutil.copytree(check_archive[0], archive)
+    written = write_clips([Hit("kalimboro", "news/monday.wav", 2.0, 2.5, -0.2, 0.6, 1)], archive / "clips", archive)
+    assert len(written) == 1 and written[0].exists()
+    found = sorted(p.relative_to(archive).as_posix() for p in find_audio(archive))
+    assert found == ["news/monday.wav", "news/tuesday.wav"]  # the clip is not one of them
