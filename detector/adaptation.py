@@ -436,11 +436,11 @@ def fit_query_map(
         report.update(before_map=before_map, after_map=after_map, gain=after_map - before_map,
                       enabled=enabled, gain_p=p)
         report["reason"] = (
-            f"held-out MAP {after_map:.3f} with the map is below {before_map:.3f} + min_gain {min_gain}"
+            f"held-out MAP {after_map:.3f} with the map is below {before_map:.3f} plus the required gain of {min_gain:.2f}"
             if after_map < before_map + min_gain
             else f"the held-out gain is not significant (one-sided paired t-test, p = {p:.2f})" if not enabled
             else "held-out MAP did not get worse" if min_gain <= 0 and p is None
-            else "held-out MAP improved by at least min_gain" + ("" if p is None else f" (p = {p:.3f})")
+            else f"held-out MAP improved by at least the required gain of {min_gain:.2f}" + ("" if p is None else f" (p = {p:.3f})")
         )
     else:
         report.update(before_map=None, after_map=None, gain=None, enabled=False,

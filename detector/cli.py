@@ -71,6 +71,7 @@ def index_cmd(
     archive: Path = typer.Argument(..., help="Folder of broadcasts; searched recursively for WAV, FLAC, MP3 and Ogg/Opus."),
     index: Path = typer.Option(..., "--index", "-i", help="Index folder to create or add to."),
     models: Optional[str] = ModelsOpt,
+    as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON (for programs) instead of a table."),
 ):
     """Index a folder of broadcasts so its words can be searched.
 
@@ -108,6 +109,12 @@ def index_cmd(
                     prog.console.print(f"[yellow]skipped[/] {info.get('error', info['path'])}", highlight=False, soft_wrap=True)
 
         rep = index_archive(archive, index, models, progress=progress)
+    if as_json:
+        _print_json({"indexed": rep.indexed, "unchanged": rep.unchanged,
+                     "failed": [{"path": p, "error": e} for p, e in rep.failed],
+                     "audio_seconds": rep.audio_seconds, "not_indexed_seconds": rep.skipped_seconds,
+                     "windows": rep.windows, "wall_seconds": rep.wall_seconds})
+        return
     t = Table(title=f"Index {index}", show_header=False)
     t.add_row("broadcasts indexed now", str(len(rep.indexed)))
     t.add_row("unchanged (skipped)", str(len(rep.unchanged)))
@@ -256,7 +263,8 @@ def _write_sample(hits, out_file: Optional[Path]) -> None:
         h.accepted = None
     if out_file:
         write_csv(hits, out_file, calibrated=False)
-        out.print(f"wrote {len(hits)} hits to check to {out_file}: fill the verdict column with yes or no")
+        out.print(f"wrote {len(hits)} hits to check to {out_file}: mark each by ear with "
+                  f"`trawl check {out_file} --index INDEX` (or fill its verdict column with yes or no)", highlight=False)
     else:
         write_csv(hits, sys.stdout, calibrated=False)
 
@@ -270,8 +278,9 @@ def calibrate_cmd(
     target_precision: float = typer.Option(0.9, "--target-precision", help="Share of accepted hits that should be correct (0-1)."),
     diagram: Optional[Path] = typer.Option(None, "--diagram", help="Where to write the reliability diagram (SVG); default beside the sample."),
     suggest_n: Optional[int] = typer.Option(None, "--suggest", help="Instead of calibrating: propose this many hits to check."),
+    as_json: bool = typer.Option(False, "--json", help="Print the calibration report as JSON (for programs) instead of a table."),
     terms_file: Optional[Path] = typer.Option(None, "--terms", help="With --suggest: the terms to draw hits for (one per line)."),
-    out_file: Optional[Path] = typer.Option(None, "--out", help="With --suggest: write the sample to this CSV (default: print it)."),
+    out_file: Optional[Path] = typer.Option(None, "--csv", "--out", help="With --suggest: write the sample to this CSV (default: print it). --out is an alias."),
     models: Optional[str] = ModelsOpt,
 ):
     """Make confidences mean what they say, from hits you checked by ear.
@@ -289,6 +298,10 @@ def calibrate_cmd(
         raise TrawlError("give the checked sample with --checked FILE (or --suggest N to make one)")
     cal, svg = calibrate(index, checked, target_precision, diagram, models)
     r = cal.report
+    if as_json:
+        _print_json({"method": cal.method, "threshold": cal.threshold, "target_precision": cal.target_precision,
+                     "report": r, "twv": cal.twv, "diagram": str(svg)})
+        return
     t = Table(title=f"Calibration ({cal.method}), stored in {index}")
     t.add_column("measure")
     t.add_column("value", justify="right")
@@ -330,8 +343,9 @@ def adapt_cmd(
                                            "(utterances.tsv, words.tsv, audio/), e.g. a few transcribed recordings."),
     suggest_n: Optional[int] = typer.Option(None, "--suggest", help="Instead of adapting: propose this many hits to "
                                             "check: each term's two best hits first (as many terms as possible)."),
+    as_json: bool = typer.Option(False, "--json", help="Print the adaptation report as JSON (for programs) instead of a table."),
     terms_file: Optional[Path] = typer.Option(None, "--terms", help="With --suggest: the terms to draw hits for (one per line)."),
-    out_file: Optional[Path] = typer.Option(None, "--out", help="With --suggest: write the sample to this CSV (default: print it)."),
+    out_file: Optional[Path] = typer.Option(None, "--csv", "--out", help="With --suggest: write the sample to this CSV (default: print it). --out is an alias."),
     models: Optional[str] = ModelsOpt,
 ):
     """Teach the query side your language's spelling habits from checked hits.
@@ -349,6 +363,9 @@ def adapt_cmd(
     if checked is None:
         raise TrawlError("give the checked sample with --checked FILE (or --suggest N --terms FILE to make one)")
     rep = adapt(index, checked, models, aligned=aligned)
+    if as_json:
+        _print_json(rep)
+        return
 
     def cv(x):
         return "-" if x is None else f"{x:.3f}"
@@ -388,7 +405,7 @@ def rules_set(file: Path = typer.Argument(..., help="Rules file (see the README 
 
 @rules_app.command("show")
 @friendly
-def rules_show(index: Path = IndexOpt, term: Optional[str] = typer.Option(None, "--try", help="Show how the rules rewrite this term.")):
+def rules_show(index: Path = IndexOpt, term: Optional[str] = typer.Option(None, "--try", help="Show how the stored rules rewrite this term (`trawl rules try` also shows the learned rules).")):
     """Show the rules stored in the index (and try them on a term)."""
     from .index_store import Index
     from .rules import parse_rules
@@ -401,6 +418,64 @@ def rules_show(index: Path = IndexOpt, term: Optional[str] = typer.Option(None, 
     out.print(rs.to_text())
     if term:
         out.print(f"{term} -> {rs.apply(term)}")
+
+
+@rules_app.command("try")
+@friendly
+def rules_try(
+    words: List[str] = typer.Argument(..., help="Words to respell, as you would type them."),
+    rules: Optional[Path] = typer.Option(None, "--rules", help="A rules file to try before storing it (default: the index's stored rules)."),
+    index: Optional[Path] = typer.Option(None, "--index", "-i", help="An index: its stored rules (unless --rules) and its learned rules."),
+    models: Optional[str] = ModelsOpt,
+):
+    """Show how a word is respelled before search: your rules, then the learned ones.
+
+    Warns about letters and signs the model does not know (they are not heard as written).
+    """
+    import unicodedata
+
+    from .models import load
+    from .rules import load_rules, parse_rules
+    from .spelling import check_term
+
+    if rules is None and index is None:
+        raise TrawlError("give a rules file with --rules FILE, an index with --index DIR, or both")
+    idx = None
+    if index is not None:
+        from .index_store import Index
+
+        idx = Index.open(index)
+    yours = load_rules(rules) if rules else None
+    if yours is None and idx is not None and idx.read_text("rules.txt"):
+        yours = parse_rules(idx.read_text("rules.txt"), "rules stored in the index")
+    learned, learned_on = None, False
+    if idx is not None:
+        from .rule_learning import LEARNED_RULES_FILE, LearnedRules
+
+        lr = idx.read_setting(LEARNED_RULES_FILE)
+        if lr:
+            stored = LearnedRules.from_dict(lr)
+            learned, learned_on = stored.ruleset(), stored.enabled
+    known = set(load(models).symbols)
+    t = Table(title="Respelling (search reads the last column)")
+    for c in ("typed", "your rules" if yours else "your rules (none)",
+              "learned rules" + ("" if learned is None else " (on)" if learned_on else " (off: not applied)"),
+              "searched as", "not known to the model"):
+        t.add_column(c, overflow="fold")
+    warn = False
+    for word in words:
+        typed = check_term(word)
+        first = yours.apply(typed) if yours else typed
+        second = learned.apply_or_keep(first) if learned is not None else first
+        final = second if learned_on else first
+        unknown = sorted({c for c in unicodedata.normalize("NFD", final) if not c.isspace() and c not in known})
+        warn = warn or bool(unknown)
+        t.add_row(typed, first, second if learned is not None else "-", final,
+                  " ".join(f"{c!r} (U+{ord(c):04X})" for c in unknown))
+    out.print(t)
+    if warn:
+        out.print("[yellow]warning:[/] the model does not read some signs above; write rules that replace "
+                  "them with letters it knows (the model card's symbols)", highlight=False)
 
 
 @rules_app.command("clear")
@@ -421,12 +496,15 @@ def evaluate_cmd(
     reference: Path = typer.Option(..., "--reference", help="Word timings of transcribed broadcasts: columns broadcast, start, end, word."),
     terms_file: Path = typer.Option(..., "--terms", help="Terms to evaluate, one per line."),
     as_json: bool = typer.Option(False, "--json", help="Print the results as JSON."),
+    csv_path: Optional[Path] = typer.Option(None, "--csv", help="Also write the per-term results to this CSV file."),
     models: Optional[str] = ModelsOpt,
 ):
     """Measure search quality on broadcasts you have transcribed (MTWV, ATWV, P@10, recall)."""
     from .evaluate_run import evaluate
 
     res = evaluate(index, reference, _read_terms([], terms_file), models)
+    if csv_path:
+        _write_evaluation_csv(res, csv_path)
     if as_json:
         sys.stdout.write(json.dumps(res, indent=1, ensure_ascii=False) + "\n")
         return
@@ -460,30 +538,153 @@ def demo_cmd(
 
 @app.command("status")
 @friendly
-def status_cmd(index: Path = IndexOpt):
+def status_cmd(index: Path = IndexOpt,
+               as_json: bool = typer.Option(False, "--json", help="Print the status as JSON (for programs) instead of a table.")):
     """What an index holds: broadcasts, hours, model, calibration, rules, adaptation."""
     from .index_store import Index
 
-    idx = Index.open(index)
-    b = idx.broadcasts()
-    t = Table(title=f"Index {index}", show_header=False)
-    t.add_row("broadcasts", str(len(b)))
-    t.add_row("audio", f"{sum(r['duration'] for r in b) / 3600:.2f} h")
-    t.add_row("windows", str(sum(r["n_windows"] for r in b)))
-    t.add_row("model card", idx.manifest["model_card_sha256"][:16])
-    t.add_row("calibration", "yes" if idx.read_setting("calibration.json") else "no")
-    t.add_row("spelling rules", "yes" if idx.read_text("rules.txt") else "no")
-    qm = idx.read_setting("query_map.json")
-    t.add_row("adaptation: query map", ("on" if qm.get("report", {}).get("enabled") else "off (did not help)") if qm else "no")
     from .rule_learning import LEARNED_RULES_FILE
 
+    idx = Index.open(index)
+    b = idx.broadcasts()
+    cal = idx.read_setting("calibration.json")
+    rules_text = idx.read_text("rules.txt") or ""
+    qm = idx.read_setting("query_map.json")
     lr = idx.read_setting(LEARNED_RULES_FILE)
     n_rules = len(lr.get("rules", "").splitlines()) if lr else 0
-    t.add_row("adaptation: learned rules", (f"on ({n_rules} rules)" if lr.get("enabled") else
-                                             f"off ({n_rules} rules, did not help)") if lr else "no")
     fails = idx.db.execute("select path, error from failures").fetchall()
+    facts = {  # one word for a setting's state everywhere: on or off
+        "broadcasts": len(b), "audio_hours": round(sum(r["duration"] for r in b) / 3600, 4),
+        "windows": sum(r["n_windows"] for r in b), "model_card": idx.manifest["model_card_sha256"][:16],
+        "calibration": "on" if cal else "off",
+        "spelling_rules": "on" if rules_text.strip() else "off",
+        "query_map": "on" if qm and qm.get("report", {}).get("enabled") else "off",
+        "learned_rules": "on" if lr and lr.get("enabled") else "off",
+        "learned_rules_count": n_rules, "failed_files": [{"path": p, "error": e} for p, e in fails],
+    }
+    if as_json:
+        _print_json(facts)
+        return
+    t = Table(title=f"Index {index}", show_header=False)
+    t.add_row("broadcasts", str(facts["broadcasts"]))
+    t.add_row("audio", f"{facts['audio_hours']:.2f} h")
+    t.add_row("windows", str(facts["windows"]))
+    t.add_row("model card", facts["model_card"])
+    t.add_row("calibration", f"on (threshold {cal.get('threshold', float('nan')):.2f})" if cal else "off (run trawl calibrate)")
+    t.add_row("spelling rules", "on" if rules_text.strip() else "off")
+    t.add_row("adaptation: query map", facts["query_map"] + ("" if facts["query_map"] == "on" else
+                                                             " (did not help)" if qm else " (not learned)"))
+    t.add_row("adaptation: learned rules", facts["learned_rules"] + (f" ({n_rules} rules)" if lr else " (not learned)")
+              + (", did not help" if lr and not lr.get("enabled") else ""))
     t.add_row("failed files", str(len(fails)))
     out.print(t)
+
+
+def _print_json(obj) -> None:
+    sys.stdout.write(json.dumps(obj, indent=1, ensure_ascii=False, default=str) + "\n")
+
+
+def _write_evaluation_csv(res: dict, path: Path) -> None:
+    """Per-term evaluation results as RFC 4180 CSV (terms formula-guarded, like the hit list)."""
+    import csv
+    import io
+
+    from .export import guard
+    from .index_store import atomic_write
+
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\r\n")
+    w.writerow(["term", "occurrences", "twv", "p_at_10", "recall_at_100"])
+    for term, r in res["per_term"].items():
+        w.writerow([guard(term), r["occurrences"], "" if r["twv"] is None else f"{r['twv']:.4f}",
+                    f"{r['p_at_10']:.4f}", f"{r['recall_at_100']:.4f}"])
+    atomic_write(Path(path), buf.getvalue().encode("utf-8"))
+
+
+# ----------------------------------------------------------------- check
+@app.command("check")
+@friendly
+def check_cmd(
+    sample: Path = typer.Argument(..., help="A hit-list CSV to check: a search's --csv, or a --suggest sample."),
+    index: Path = IndexOpt,
+    no_browser: bool = typer.Option(False, "--no-browser", help="Only print the page's address; do not open a browser."),
+    port: int = typer.Option(0, "--port", help="Port on 127.0.0.1 to serve the page on (default: any free port)."),
+    archive: Optional[Path] = typer.Option(None, "--archive", help="The archive folder (default: the one recorded in the index)."),
+):
+    """Listen to each hit of a sample on a local page and mark it yes or no.
+
+    Every verdict is written into SAMPLE at once; run the same command again to carry on
+    where you stopped. The page is served on 127.0.0.1 only, at an address holding a secret.
+    Press Ctrl-C to stop.
+    """
+    from .check_server import address, bind, open_session, serve
+
+    session = open_session(sample, index, archive)
+    sock = bind(port)
+    url = address(session, sock)
+    print(url, flush=True)  # on a line of its own, first: scripts wait for it
+    done = sum(v is not None for v in session.sample.verdicts())
+    err.print(f"checking {sample}: {done} of {len(session.sample.rows)} hits checked so far; Ctrl-C stops",
+              highlight=False, soft_wrap=True)
+    if not no_browser:
+        import webbrowser
+
+        if not webbrowser.open(url):
+            err.print("could not open a browser: open the address above yourself", highlight=False)
+    serve(session, sock)
+    v = session.sample.verdicts()
+    err.print(f"stopped: {sum(x is not None for x in v)} of {len(v)} hits checked "
+              f"({sum(x is True for x in v)} yes, {sum(x is False for x in v)} no), all saved in {sample}",
+              highlight=False, soft_wrap=True)
+
+
+# ----------------------------------------------------------------- help text
+def _plain_help_types() -> None:
+    """Help shows a word for what an option takes (FILE, DIR, N...) and nothing on a flag, instead of
+    typer's Python types (<bool>, <list[Path]>). Set once here, so every command gets it."""
+    import inspect
+
+    from typer.models import ArgumentInfo, OptionInfo
+
+    folders = {"index", "archive", "clips", "aligned", "models", "archive_dir"}
+
+    def word(name: str, annotation: str, is_argument: bool) -> str:
+        a = str(annotation)
+        if "bool" in a:
+            return ""
+        many = "List" in a or "list" in a
+        if name in folders:
+            w = "DIR"
+        elif "Path" in a:
+            w = "FILE"
+        elif "int" in a:
+            w = "N"
+        elif "float" in a:
+            w = "NUMBER"
+        else:
+            w = "TEXT"
+        if is_argument:  # the usage line adds "..." to an argument that takes several
+            w = name.upper().rstrip("S") if many else name.upper()
+        return w  # a repeatable option says so in its help
+
+    groups = [app] + [g.typer_instance for g in app.registered_groups]
+    for group in groups:
+        for command in group.registered_commands:
+            for name, p in inspect.signature(command.callback).parameters.items():
+                info = p.default
+                if isinstance(info, (OptionInfo, ArgumentInfo)) and info.metavar is None:
+                    info.metavar = word(name, p.annotation, isinstance(info, ArgumentInfo))
+    try:  # an argument's type column ignores its metavar in typer >= 0.2x: show the metavar alone
+        from typer.core import TyperArgument, TyperOption
+
+        TyperArgument.display_type_rich = lambda self, ctx: None if self.metavar is not None else self.display_type(ctx)
+        shown = TyperOption.display_type_rich
+        TyperOption.display_type_rich = lambda self, ctx: None if self.is_flag else shown(self, ctx)  # --help too
+    except (ImportError, AttributeError):  # pragma: no cover - older typer prints no types
+        pass
+
+
+_plain_help_types()
 
 
 def main():  # pragma: no cover

@@ -11,6 +11,9 @@ from . import TrawlError
 from .index_store import atomic_write
 
 CONTEXT_SECONDS = 0.5
+# Written into every clips folder: indexing skips a folder holding it, so clips written inside
+# the archive are not indexed as broadcasts on the next run.
+CLIPS_MARKER = ".trawl-clips"
 
 
 def clip_name(hit) -> str:
@@ -27,6 +30,7 @@ def write_clips(hits, folder: Path, archive: str | Path | None) -> list[Path]:
         raise TrawlError("--clips needs the archive folder (--archive DIR)")
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
+    atomic_write(folder / CLIPS_MARKER, b"Listening clips written by trawl search --clips; trawl index skips this folder.\n")
     written = []
     for h in hits:
         src = Path(archive) / h.broadcast

@@ -75,8 +75,12 @@ def find_audio(archive: Path) -> list[Path]:
         raise TrawlError(f"the archive folder {archive} does not exist")
     if not archive.is_dir():
         raise TrawlError(f"{archive} is not a folder")
+    from .clips import CLIPS_MARKER
+
+    clip_folders = {m.parent for m in archive.rglob(CLIPS_MARKER)}  # trawl's own listening clips
     files = [p for p in archive.rglob("*") if p.is_file() and p.suffix.lower() in audio.EXTENSIONS
-             and not any(part.startswith(".") for part in p.relative_to(archive).parts)]
+             and not any(part.startswith(".") for part in p.relative_to(archive).parts)
+             and not clip_folders.intersection(p.parents)]
     return sorted(files, key=lambda p: p.relative_to(archive).as_posix())
 
 
