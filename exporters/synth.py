@@ -71,13 +71,12 @@ def plain(word: str) -> str:
 
 
 def excluded_words(root: Path) -> set[str]:
-    """Words never to generate: the demo lexicon and the real corpus's words (marks removed)."""
+    """Words never to generate: the demo lexicon and every shared corpus's words (marks removed)."""
     lexicon = root / "demo_broadcasts" / "lexicon.txt"
     if not lexicon.exists():
         raise SystemExit(f"{lexicon} is missing: the demo's words must be known before synthesis")
     out = {plain(w) for w in lexicon.read_text(encoding="utf-8").split()}
-    words = root.parent / "shared" / "corpora" / "mboshi" / "words.tsv"
-    if words.exists():
+    for words in sorted((root.parent / "shared" / "corpora").glob("*/words.tsv")):
         for line in words.read_text(encoding="utf-8").splitlines()[1:]:
             out.add(plain(line.split("\t")[-1]))
     return out

@@ -549,10 +549,11 @@ def main(argv=None):
     t_train = time.time()
     losses = []
     eval_every = 20 if a.quick else 250
-    while time.time() - t_train < budget:
+    warmup = 10 if a.quick else 200
+    while time.time() - t_train < budget or (a.quick and step < 16):  # the quick run: a few steps even on a busy machine
         frac = min(1.0, (time.time() - t_train) / budget)
         for g in opt.param_groups:  # warm-up then cosine decay over the time budget
-            g["lr"] = 2e-3 * min(1.0, (step + 1) / 200) * (0.05 + 0.95 * 0.5 * (1 + math.cos(math.pi * frac)))
+            g["lr"] = 2e-3 * min(1.0, (step + 1) / warmup) * (0.05 + 0.95 * 0.5 * (1 + math.cos(math.pi * frac)))
         idx = sampler.batch(n_pairs=6 if a.quick else 18, n_random=4 if a.quick else 10)
         loss, parts = step_loss(model, items, idx, table, letters, rng)
         opt.zero_grad()

@@ -116,6 +116,8 @@ def main(argv=None):
     ap.add_argument("--corpora", type=Path, default=ROOT.parent / "shared" / "corpora",
                     help="the shared corpora: every transcribed one but the unseen language (exporters/corpus.py)")
     ap.add_argument("--no-augment", dest="augment", action="store_false", help="no VTLP, tilt or masks")
+    ap.add_argument("--items", type=Path, default=None,
+                    help="the item cache exporters.train wrote (runs/items2-*.pkl): reuse its features")
     ap.add_argument("--synth", type=Path, default=None)
     ap.add_argument("--models", type=Path, default=ROOT / "models", help="folder with the exported encoders; the head is added there")
     ap.add_argument("--minutes", type=float, default=25.0)
@@ -140,8 +142,19 @@ def main(argv=None):
         synth = quick_synthetic(ROOT / "runs" / "quick-synth.pkl")
     if not dev_u:  # no corpus at hand: a few synthetic utterances stand in for the dev split
         dev_u, synth = synth[:6], synth[6:]
-    data = prepare(build_items(train_u, a.variants, a.seed) + build_items(synth, 2, a.seed + 1), models, table)
-    dev = prepare(build_items(dev_u, 1, 0), models, table)
+    if a.items is not None and a.items.exists():  # the encoders' cached items: only what they lack is built here
+        import pickle
+
+        with open(a.items, "rb") as f:
+            cached, cached_dev = pickle.load(f)
+        extra = [u for parts in splits.values() for u in parts.get("letters", [])]
+        items = cached + build_items(extra, a.variants, a.seed)
+        dev_items = [it for name, its in cached_dev.items() if not name.endswith("-radio") for it in its]
+    else:
+        items = build_items(train_u, a.variants, a.seed) + build_items(synth, 2, a.seed + 1)
+        dev_items = build_items(dev_u, 1, 0)
+    data = prepare(items, models, table)
+    dev = prepare(dev_items, models, table)
     print(f"data: {len(data)} utterances, dev {len(dev)}, {time.time() - t0:.0f}s", flush=True)
     head = LetterHead(len(alphabet), frame_dim=models.card["frame_dim"])
     with torch.no_grad():
@@ -154,10 +167,11 @@ def main(argv=None):
     budget, t_train, step, history, best, best_state = a.minutes * 60, time.time(), 0, [], 9.0, None
     order = sorted(range(len(data)), key=lambda i: len(data[i]["frames"]))
     chunks = [order[i:i + 24] for i in range(0, len(order), 24)]  # similar lengths batched together
-    while time.time() - t_train < budget:
-        frac = (time.time() - t_train) / budget
+    warmup = 10 if a.quick else 100
+    while time.time() - t_train < budget or (a.quick and step < 20):  # the quick run: a few steps even on a busy machine
+        frac = min(1.0, (time.time() - t_train) / budget)
         for g in opt.param_groups:
-            g["lr"] = 2e-3 * min(1.0, (step + 1) / 100) * (0.05 + 0.95 * 0.5 * (1 + math.cos(math.pi * frac)))
+            g["lr"] = 2e-3 * min(1.0, (step + 1) / warmup) * (0.05 + 0.95 * 0.5 * (1 + math.cos(math.pi * frac)))
         fr, lm, lens, tg, tl, mask = batch(data, rng.choice(chunks))
         if a.augment:  # the encoders' feature-domain perturbation, on the head's own view of the features
             lm = torch.from_numpy(np.stack([perturb(x, rng) for x in lm.numpy()]))

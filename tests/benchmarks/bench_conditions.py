@@ -9,8 +9,9 @@ Conditions (exporters/corpus.py, CORPUS_ROLES; nothing here was used in training
 - unseen speakers: the Arabic isolated-word corpora's held-out speakers (never heard in training);
 - unseen language: English digits (6 speakers, recorded at 8 kHz; never trained on);
 - unseen channel: the seen voices' held-out sentences through the held-back channel
-  (music tracks never used in training, Urdu television babble at 12-22 dB, a 100-5000 Hz
-  band and the codec2 speech codec at 3200 bit/s: augment.radio_chain(pool="held"));
+  (music tracks never used in training at 5-15 dB, Urdu television babble at 12-22 dB, a
+  100-5000 Hz band: augment.radio_chain(pool="held"));
+- unseen codec: the same sentences, clean, through codec2 at 3200 bit/s (never in training);
 - trained channel: the same sentences through a random channel of the training pool (for scale).
 
 For each: tokens of at least 4 letters (after NFD, marks removed), at most 2 s; acoustic AP
@@ -59,7 +60,7 @@ MIN_LETTERS = 4
 
 
 def conditions(split: str) -> dict[str, tuple[list, str]]:
-    """{condition: (utterances, channel)}; channel is 'clean', 'held' or 'train'."""
+    """{condition: (utterances, channel)}; channel is 'clean', 'held', 'codec2' or 'train'."""
     s = corpus_splits(CORPORA)
     part = "held" if split == "held" else "dev"
     mboshi = s.get("mboshi", {}).get(part, [])
@@ -69,6 +70,7 @@ def conditions(split: str) -> dict[str, tuple[list, str]]:
         "unseen speakers": (arabic, "clean"),
         "unseen language": (s.get("english-digits", {}).get("language", []), "clean"),
         "unseen channel": (mboshi, "held"),
+        "unseen codec": (mboshi, "codec2"),
         "trained channel": (mboshi, "train"),
     }
 
@@ -88,7 +90,9 @@ def select(utts, channel: str, limit: int, seed: int, sources: dict):
             continue
         x = load_audio(u)
         f, lead = 1.0, 0.0
-        if channel != "clean":
+        if channel == "codec2":
+            x = augment.codec2(x)
+        elif channel != "clean":
             x, f, lead = augment.radio_chain(x, rng, **sources[channel])
         dur = len(x) / SAMPLE_RATE
         for s, e, w in words:
@@ -160,10 +164,11 @@ def search_condition(name, utts, channel, args, sources, train_types) -> dict:
 
     work = ROOT / "runs" / "bench_conditions" / args.split / name.replace(" ", "-")
     shutil.rmtree(work, ignore_errors=True)
-    held = (lambda x, rng: augment.radio_chain(x, rng, **sources["held"])[0]) if channel == "held" else None
+    held = {"held": lambda x, rng: augment.radio_chain(x, rng, **sources["held"])[0],
+            "codec2": lambda x, rng: augment.codec2(x)}.get(channel)
     m = builder.build(work / "b", minutes_total=args.search_minutes, seed=args.seed, broadcast_minutes=2.0,
                       opus=False, utterances=utts, train_types=train_types, channel=held, min_letters=MIN_LETTERS)
-    folder = work / "b" / ("radio" if channel == "held" else "clean")
+    folder = work / "b" / ("clean" if held is None else "radio")
     index_archive(folder, work / "index")
     terms = [t for t, _, _ in builder.read_terms(work / "b" / "terms.tsv")]
     s = Searcher(work / "index")
