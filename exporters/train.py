@@ -339,6 +339,9 @@ def crop(item, target: str | None, rng: random.Random):
     if T <= CROP:
         return feats, wf, item
     picks = [w for w in wf if w[2] == target] or wf
+    if not picks:  # no usable word in a long utterance: any excerpt (its non-word spans still teach)
+        s0 = rng.randint(0, (T - CROP) // 2) * 2
+        return feats[s0:s0 + CROP], [], {"feats": feats[s0:s0 + CROP], "words": []}
     a, b, _ = rng.choice(picks)
     lo = max(0, 2 * b - CROP + 2 * EDGE)
     hi = min(T - CROP, 2 * a - 2 * EDGE)
