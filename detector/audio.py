@@ -44,6 +44,8 @@ def load(path: Path | str, block_seconds: float = 60.0) -> np.ndarray:
     import soxr
 
     path = Path(path)
+    if not path.is_file():
+        raise TrawlError(f"{path}: {'is a folder, not an audio file' if path.is_dir() else 'no such file'}")
     if path.suffix.lower() not in EXTENSIONS:
         raise TrawlError(f"{path}: unsupported audio format {path.suffix or '(no extension)'}")
     try:
