@@ -94,6 +94,7 @@ def sha256_file(path: Path) -> str:
 
 
 # ------------------------------------------------------------------ locks
+LOCK_FILES = (".writer.lock", ".settings.lock", ".snapshot.lock")
 _held: dict[str, list] = {}  # lock file -> [fd, depth]: a command that calls another (adapt -> calibrate) re-enters
 
 
@@ -199,6 +200,7 @@ class Index:
                 raise CatalogueDamaged(f"the catalogue {cat} is missing")  # its files can no longer be told apart
             for sub in ("pending", "letters"):
                 (self.root / sub).mkdir(exist_ok=True)
+            new = not cat.exists()
             self.db = sqlite3.connect(str(cat), isolation_level=None)
             self.db.execute("pragma busy_timeout = 60000")
             try:
@@ -207,6 +209,8 @@ class Index:
                 for col, kind in ADDED_COLUMNS.items():
                     if col not in have:
                         self.db.execute(f"alter table broadcasts add column {col} {kind}")
+                if new:  # sqlite creates it 0644 & ~umask: the user's umask decides, as for every other file
+                    os.chmod(cat, file_mode())
             except sqlite3.DatabaseError as e:
                 self.db.close()
                 raise self.damaged_catalogue(e) from None
@@ -232,7 +236,7 @@ class Index:
     # --------------------------------------------------------------- opening and locks
     def lock(self, what: str = "index", wait: bool = False):
         """One writer at a time: 'index' for the catalogue and graph, 'settings' for the query side."""
-        return file_lock(self.root / f".{what}.lock" if what != "index" else self.root / ".writer.lock", what, wait)
+        return file_lock(self.root / (".writer.lock" if what == "index" else f".{what}.lock"), what, wait)
 
     def snapshot(self, exclusive: bool = False):
         """Readers open the index inside snapshot(); a writer commits inside snapshot(exclusive=True)."""
@@ -265,6 +269,8 @@ class Index:
             "created": now(),
         }
         idx = cls(root, manifest, write=True)
+        for lock in LOCK_FILES:  # made once, so that taking a lock later adds no file
+            os.close(os.open(str(root / lock), os.O_RDWR | os.O_CREAT, 0o666))
         atomic_write(man_path, json.dumps(manifest, indent=1).encode())
         return idx
 
@@ -450,9 +456,10 @@ class Index:
     def total_seconds(self) -> float:
         return float(self.q("select coalesce(sum(duration), 0) from broadcasts")[0][0])
 
-    def shard_records(self) -> dict[int, dict]:
-        """Shard number -> {bytes, sha256, count} recorded when it was last written (none for older indexes)."""
-        rows = self.q("select key, value from meta where key like 'shard:%'")
+    def shard_records(self, which: str = "shard") -> dict[int, dict]:
+        """Shard number -> {bytes, sha256, count} recorded when it was last written (none for older
+        indexes); which="shard_next": the records of a merge that was killed before its commit."""
+        rows = self.q(f"select key, value from meta where key like '{which}:%'")
         return {int(k.split(":")[1]): json.loads(v) for k, v in rows}
 
     # --------------------------------------------------------------- graph
@@ -499,25 +506,39 @@ class Index:
             return 0
         for first, n in dead:
             g.remove(np.arange(first, first + n))
-        written = g.save(self.root, atomic_write_with)
-        records = {k: {"bytes": (self.root / shard_name(k)).stat().st_size,
-                       "sha256": sha256_file(self.root / shard_name(k)),
-                       "count": g.shards[k].get_current_count()} for k in written}
-        with self.snapshot(exclusive=True):
-            cur = self.db.cursor()
-            cur.execute("begin immediate")
-            try:
-                for k, r in records.items():
-                    cur.execute("insert or replace into meta(key, value) values(?, ?)", (f"shard:{k}", json.dumps(r)))
-                if added:
-                    cur.execute(f"update broadcasts set in_graph=1 where id in ({','.join(map(str, added))})")
-                cur.execute("delete from meta where key='dead_labels'")
-                cur.execute("commit")
-            except BaseException:
-                cur.execute("rollback")
-                raise
-            self._drop_stale_files()
+        with self.snapshot(exclusive=True):  # readers wait for the whole merge, then see its result
+            records = {}
+            for k in sorted(g.changed):
+                def write(tmp: str, k: int = k) -> None:
+                    g.shards[k].save_index(tmp)
+                    # recorded before the file is replaced: a run killed after the replace leaves a file
+                    # that matches this record, not a damaged one (integrity.verify accepts either)
+                    records[k] = {"bytes": os.path.getsize(tmp), "sha256": sha256_file(Path(tmp)),
+                                  "count": g.shards[k].get_current_count()}
+                    self.q("insert or replace into meta(key, value) values(?, ?)", (f"shard_next:{k}", json.dumps(records[k])))
+
+                atomic_write_with(self.root / shard_name(k), write)
+            g.changed.clear()
+            self._commit_merge(records, added)
         return g.get_current_count() - before
+
+    def _commit_merge(self, records: dict, added: list[int]) -> None:
+        """One transaction: the shards' records, the merged broadcasts marked, removed labels cleared;
+        then the files nothing refers to any more go."""
+        cur = self.db.cursor()
+        cur.execute("begin immediate")
+        try:
+            for k, r in records.items():
+                cur.execute("insert or replace into meta(key, value) values(?, ?)", (f"shard:{k}", json.dumps(r)))
+            cur.execute("delete from meta where key like 'shard_next:%'")
+            if added:
+                cur.execute(f"update broadcasts set in_graph=1 where id in ({','.join(map(str, added))})")
+            cur.execute("delete from meta where key='dead_labels'")
+            cur.execute("commit")
+        except BaseException:
+            cur.execute("rollback")
+            raise
+        self._drop_stale_files()
 
     def _drop_stale_files(self) -> None:
         """Delete pending and letter files no committed broadcast refers to (a killed run's, a

@@ -68,8 +68,12 @@ def verify(idx: Index, hashes: bool = True, rows: list[dict] | None = None) -> l
     rows = idx.broadcasts() if rows is None else rows
     out: list[Damage] = []
     cap = int(idx.manifest["hnsw"].get("shard_capacity", UNSHARDED))
+    unfinished = idx.shard_records("shard_next")
     for k, rec in sorted(idx.shard_records().items()):
         state = _file_state(idx.root / shard_file(k), rec.get("bytes"), rec.get("sha256"), hashes)
+        if state and k in unfinished:  # a merge killed after replacing the file: its own record says
+            nxt = unfinished[k]
+            state = _file_state(idx.root / shard_file(k), nxt.get("bytes"), nxt.get("sha256"), hashes)
         if state:
             held = [b for b in rows if b["in_graph"] and b["n_windows"]
                     and b["first_label"] // cap <= k <= (b["first_label"] + b["n_windows"] - 1) // cap]

@@ -118,7 +118,10 @@ class Searcher:
         learned = LearnedRules.from_dict(lr) if lr else None
         self.learned_rules = learned.ruleset() if learned is not None and learned.enabled else None
         rng = np.random.default_rng(0)
-        live = np.concatenate([np.arange(f, f + c) for f, c in zip(self.firsts, self.counts)])
+        # drawn over the windows in broadcast-name order, not label order: a broadcast embedded again
+        # (repaired, changed) gets new labels, and the sample, hence every score, must not move
+        by_name = sorted(range(len(self.names)), key=self.names.__getitem__)
+        live = np.concatenate([np.arange(self.firsts[i], self.firsts[i] + self.counts[i]) for i in by_name])
         pick = live if len(live) <= BACKGROUND_SAMPLE else rng.choice(live, BACKGROUND_SAMPLE, replace=False)
         self.background_labels = np.sort(pick)
         self.background = self.index.vectors(self.background_labels)
