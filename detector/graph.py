@@ -45,6 +45,15 @@ class ShardedGraph:
         self.changed: set[int] = set()
         self._pool: ThreadPoolExecutor | None = None
         self.alive: np.ndarray | None = None  # labels still in the catalogue (hnswlib cannot list the deleted ones)
+        self.root: Path | None = None  # where it was loaded from, for messages
+
+    def damaged(self, e: Exception):
+        """hnswlib's own error on a graph file whose size is right but whose content is not."""
+        from . import IndexDamaged
+
+        where = self.root or "the index"
+        return IndexDamaged(f"the graph in {where} answers inconsistently ({str(e).splitlines()[0][:60]}): it is damaged; "
+                            f"run `trawl status --verify --index {where}`, then `trawl index ARCHIVE_DIR --index {where}` to repair it")
 
     # ----------------------------------------------------------- files
     @classmethod
@@ -55,6 +64,7 @@ class ShardedGraph:
         import hnswlib
 
         g = cls(dim, M, ef_construction, capacity)
+        g.root = Path(root)
         k = 0
         while (k < count) if count is not None else (Path(root) / shard_file(k)).exists():
             path = Path(root) / shard_file(k)
@@ -134,7 +144,10 @@ class ShardedGraph:
         which = labels // self.capacity
         for k in np.unique(which):
             sel = which == k
-            out[sel] = np.asarray(self.shards[int(k)].get_items(labels[sel]), np.float32).reshape(-1, self.dim)
+            try:
+                out[sel] = np.asarray(self.shards[int(k)].get_items(labels[sel]), np.float32).reshape(-1, self.dim)
+            except (RuntimeError, IndexError) as e:
+                raise self.damaged(e) from None
         return out
 
     def knn_query(self, queries: np.ndarray, k: int, num_threads: int = 1) -> tuple[np.ndarray, np.ndarray]:
@@ -149,7 +162,10 @@ class ShardedGraph:
             try:
                 return s.knn_query(queries, k=kk, num_threads=num_threads)
             except RuntimeError:  # asked for (nearly) every element: hnswlib finds fewer than k; answer exactly
-                return exact_knn(s, queries, kk, self.alive)
+                try:
+                    return exact_knn(s, queries, kk, self.alive)
+                except (RuntimeError, IndexError) as e:
+                    raise self.damaged(e) from None
 
         if len(live) == 1:
             return one(live[0])

@@ -80,14 +80,14 @@ def verify(idx: Index, hashes: bool = True, rows: list[dict] | None = None) -> l
             out.append(Damage(shard_file(k), state, [b["id"] for b in held], [b["path"] for b in held], shard=k))
     with_letters = bool(idx.manifest.get("letters"))
     for b in rows:
-        if not b["n_windows"]:
+        if not b["n_windows"] and not b.get("letters_bytes"):  # nothing stored for it (an older index)
             continue
         if with_letters:
             p = idx.letters_path(b)
             state = _file_state(p, b.get("letters_bytes"), b.get("letters_sha256"), hashes)
             if state:
                 out.append(Damage(f"letters/{p.name}", state, [b["id"]], [b["path"]]))
-        if not b["in_graph"]:
+        if not b["in_graph"] and b["n_windows"]:
             p = idx.pending_path(b)
             state = _file_state(p, b.get("vectors_bytes"), b.get("vectors_sha256"), hashes)
             if state:
