@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import TrawlError
+from . import IndexDamaged, TrawlError
 from .graph import query_ef
 from .hits import Hit
 from .index_store import Index
@@ -101,8 +101,9 @@ class Searcher:
         with self.index.snapshot():  # the last finished state, even while a run is writing
             self._open_snapshot()
         if self.graph.get_current_count() == 0 or not self.counts.sum():
-            raise TrawlError(f"the index at {self.index.root} holds no windows yet" + (
-                f" that can be searched ({self.warnings[0]})" if self.warnings else ""))
+            if self.warnings:  # everything it holds is in damaged files
+                raise IndexDamaged(f"the index at {self.index.root} holds no windows that can be searched: {self.warnings[0]}")
+            raise TrawlError(f"the index at {self.index.root} holds no windows yet")
         self.total_seconds = self.index.total_seconds()
         # label -> window: labels of a broadcast are contiguous, so one flat array per field suffices
         self.offsets = np.concatenate([[0], np.cumsum(self.counts)[:-1]]).astype(np.int64)

@@ -222,8 +222,8 @@ def test_top_beyond_what_the_graph_can_return_lists_hits(clean):
 
 
 # ------------------------------------------------------------------ case 8: damaged files; verify and repair
-def damage_letters_deleted(idx):
-    sorted((idx / "letters").glob("*.npy"))[0].unlink()
+def damage_letters_deleted(idx):  # the largest: a broadcast with speech
+    max((idx / "letters").glob("*.npy"), key=lambda p: p.stat().st_size).unlink()
 
 
 def damage_letters_truncated(idx):
@@ -252,6 +252,14 @@ def damage_catalogue_truncated(idx):
     f.write_bytes(f.read_bytes()[:3000])
 
 
+def damage_catalogue_deleted(idx):
+    (idx / "catalog.sqlite").unlink()
+
+
+DAMAGE_CASES = [damage_letters_deleted, damage_letters_truncated, damage_graph_deleted, damage_graph_truncated,
+                damage_graph_changed, damage_catalogue_truncated, damage_catalogue_deleted]  # also run by bench_index_faults.py
+
+
 @pytest.mark.parametrize("damage, file, searchable", [
     (damage_letters_deleted, "letters/", True),
     (damage_letters_truncated, "letters/", True),
@@ -259,6 +267,7 @@ def damage_catalogue_truncated(idx):
     (damage_graph_truncated, "graph.hnsw", True),
     (damage_graph_changed, "graph.hnsw", None),
     (damage_catalogue_truncated, "catalog.sqlite", False),
+    (damage_catalogue_deleted, "catalog.sqlite", False),
 ])
 def test_damaged_files_are_named_refused_and_repaired(clean, tmp_path, damage, file, searchable):
     """Issue case 8: verify names the damaged file and the command that mends it (exit 3); search

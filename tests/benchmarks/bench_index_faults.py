@@ -146,41 +146,12 @@ def concurrent(arch: Path, work: Path, terms: list[str], reference: list) -> dic
             "refusing_equals_clean": hits_of(idx2, terms) == reference}
 
 
-def damage_cases():
-    def letters_deleted(i):  # the largest: a broadcast with speech
-        max((i / "letters").glob("*.npy"), key=lambda p: p.stat().st_size).unlink()
-
-    def letters_truncated(i):
-        f = sorted((i / "letters").glob("*.npy"))[-1]
-        f.write_bytes(f.read_bytes()[:1000])
-
-    def graph_deleted(i):
-        (i / "graph.hnsw").unlink()
-
-    def graph_truncated(i):
-        f = i / "graph.hnsw"
-        f.write_bytes(f.read_bytes()[: f.stat().st_size // 3])
-
-    def graph_changed(i):
-        f = i / "graph.hnsw"
-        d = bytearray(f.read_bytes())
-        d[len(d) // 2] ^= 0xFF
-        f.write_bytes(bytes(d))
-
-    def catalogue_truncated(i):
-        f = i / "catalog.sqlite"
-        f.write_bytes(f.read_bytes()[:3000])
-
-    def catalogue_deleted(i):
-        (i / "catalog.sqlite").unlink()
-
-    return [letters_deleted, letters_truncated, graph_deleted, graph_truncated, graph_changed,
-            catalogue_truncated, catalogue_deleted]
-
-
 def damaged(arch: Path, work: Path, clean_idx: Path, terms: list[str], reference: list) -> list[dict]:
     out = []
-    for case in damage_cases():
+    sys.path.insert(0, str(ROOT / "tests"))
+    from test_index_care import DAMAGE_CASES  # the same damage as the tests make
+
+    for case in DAMAGE_CASES:
         idx = work / f"damaged-{case.__name__}"
         shutil.copytree(clean_idx, idx)
         case(idx)
@@ -189,7 +160,7 @@ def damaged(arch: Path, work: Path, clean_idx: Path, terms: list[str], reference
         t0 = time.time()
         rcode, rtext = trawl("index", arch, "--index", idx)
         repaired = hits_of(idx, terms) == reference
-        out.append({"case": case.__name__, "verify_exit": vcode, "verify_clear": clean_answer(vtext) and "trawl index" in vtext,
+        out.append({"case": case.__name__.replace("damage_", ""), "verify_exit": vcode, "verify_clear": clean_answer(vtext) and "trawl index" in vtext,
                     "search_exit": scode, "search_clear": clean_answer(stext), "repair_exit": rcode,
                     "repair_seconds": round(time.time() - t0, 1), "hits_restored": repaired})
     return out
