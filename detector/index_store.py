@@ -217,7 +217,9 @@ class Index:
         else:
             if not cat.exists():
                 raise CatalogueDamaged(f"the catalogue {cat} is missing: run `trawl index ARCHIVE_DIR --index {self.root}` to rebuild it")
-            self.db = sqlite3.connect(f"file:{cat}?mode=ro", uri=True, isolation_level=None)
+            from urllib.parse import quote
+
+            self.db = sqlite3.connect(f"file:{quote(str(cat))}?mode=ro", uri=True, isolation_level=None)
             self.db.execute("pragma busy_timeout = 60000")
         self._graph = None
         self._columns = None
@@ -230,6 +232,14 @@ class Index:
         """Rows of a catalogue query; a damaged catalogue is an IndexDamaged error, not sqlite's own."""
         try:
             return self.db.execute(sql, args).fetchall()
+        except sqlite3.OperationalError as e:
+            if self.writable or "readonly" not in str(e) or not os.access(self.root, os.W_OK):
+                raise self.damaged_catalogue(e) from None
+            # a run killed mid-commit left a journal that only a writable connection can roll back
+            self.db.close()
+            self.db = sqlite3.connect(str(self.root / "catalog.sqlite"), isolation_level=None)
+            self.db.execute("pragma busy_timeout = 60000")
+            return self.q(sql, args)
         except sqlite3.DatabaseError as e:
             raise self.damaged_catalogue(e) from None
 

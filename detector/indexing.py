@@ -155,17 +155,21 @@ def _index_locked(archive: Path, files: list[Path], index_dir: Path, models, pro
     rep.excluded = sorted(r for r in rels if r in excluded)
     rels = {r: f for r, f in rels.items() if r not in excluded}
     digests: dict[str, str] = {}
-    gone = {b["sha256"]: b for b in idx.broadcasts() if b["path"] not in rels}
+    gone: dict[str, list[dict]] = {}  # content hash -> broadcasts whose files are gone
+    for b in idx.broadcasts():
+        if b["path"] not in rels:
+            gone.setdefault(b["sha256"], []).append(b)
     if gone:  # renamed or moved with the same content: keep the work, under the new path
         for rel, f in rels.items():
             if idx.known(rel) is None:
                 digests[rel] = file_hash(f)
-                b = gone.pop(digests[rel], None)
-                if b is not None:
+                if gone.get(digests[rel]):
+                    b = gone[digests[rel]].pop(0)
                     idx.rename_broadcast(b["id"], rel)
                     rep.renamed.append((b["path"], rel))
-        idx.remove_broadcasts([b["id"] for b in gone.values()])
-        rep.removed = sorted(b["path"] for b in gone.values())
+        left = [b for bs in gone.values() for b in bs]
+        idx.remove_broadcasts([b["id"] for b in left])
+        rep.removed = sorted(b["path"] for b in left)
     idx.forget_failures([p for p, _ in idx.failures() if p not in rels])
     if progress:
         progress("start", files=len(files), total_bytes=sum(f.stat().st_size for f in files))
