@@ -135,7 +135,8 @@ def index_cmd(
     if rep.failed:
         for path, e in rep.failed:
             err.print(f"[yellow]failed:[/] {e}", highlight=False, soft_wrap=True)
-        err.print(f"{len(rep.failed)} file(s) failed and are not searchable; `trawl status --index {index}` lists them")
+        err.print(f"{len(rep.failed)} file(s) failed and are not searchable; `trawl status --index {index}` lists them",
+                  highlight=False, soft_wrap=True)
         raise typer.Exit(1)
 
 
