@@ -278,11 +278,11 @@ class Index:
                      "shard_capacity": SHARD_CAPACITY},
             "created": now(),
         }
-        idx = cls(root, manifest, write=True)
         for lock in LOCK_FILES:  # made once, so that taking a lock later adds no file
             os.close(os.open(str(root / lock), os.O_RDWR | os.O_CREAT, 0o666))
+        # the description first: a run killed before its catalogue exists leaves a folder the next run continues
         atomic_write(man_path, json.dumps(manifest, indent=1).encode())
-        return idx
+        return cls(root, manifest, write=True)
 
     @classmethod
     def read_manifest(cls, root: Path) -> dict:

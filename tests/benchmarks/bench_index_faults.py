@@ -98,6 +98,8 @@ def kills(arch: Path, work: Path, n: int, clean_seconds: float, rng, terms: list
         p = trawl("index", arch, "--index", idx, wait=False)
         time.sleep(float(rng.uniform(0.5, clean_seconds)))
         if p.poll() is not None:  # finished first: a complete index
+            if p.returncode != 0:
+                raise SystemExit(f"an index run failed (exit {p.returncode}): {p.stderr.read()[-400:]}")
             completes += 1
             complete_differ += hits_of(idx, terms) != reference
             shutil.rmtree(idx)
