@@ -344,3 +344,15 @@ def test_time_left_out_is_never_negative():
     # hand-worked: speech measured a hair over the audio (frame rounding) leaves out 0 s, not -0.0 min
     assert Report(audio_seconds=10.0, speech_seconds=10.0 + 1e-9).skipped_seconds == 0.0
     assert Report(audio_seconds=10.0, speech_seconds=7.5).skipped_seconds == 2.5
+
+
+def test_a_run_killed_before_its_catalogue_existed_is_continued(clean, tmp_path):
+    """A new index writes its description first, then its catalogue: a run killed between the two
+    leaves this folder, which the next run continues. (Found by the fault benchmark: in the other
+    order the folder held a catalogue without a description, refused as 'not a Trawl index'.)"""
+    arch, idx0, reference = clean
+    idx = tmp_path / "idx"
+    idx.mkdir()
+    shutil.copy(idx0 / "trawl-index.json", idx / "trawl-index.json")
+    rep = index_archive(arch, idx)
+    assert rep.indexed == ["a.wav", "c.wav"] and hits(idx) == reference
