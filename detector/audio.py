@@ -44,6 +44,8 @@ def load(path: Path | str, block_seconds: float = 60.0) -> np.ndarray:
     import soxr
 
     path = Path(path)
+    if not path.is_file():
+        raise TrawlError(f"{path}: {'is a folder, not an audio file' if path.is_dir() else 'no such file'}")
     if path.suffix.lower() not in EXTENSIONS:
         raise TrawlError(f"{path}: unsupported audio format {path.suffix or '(no extension)'}")
     try:
@@ -54,6 +56,10 @@ def load(path: Path | str, block_seconds: float = 60.0) -> np.ndarray:
         raise TrawlError(f"{path}: cannot decode it: damaged, truncated or not really {path.suffix[1:].upper()} audio") from None
     if info.frames == 0 or info.samplerate <= 0:
         raise TrawlError(f"{path}: the file holds no audio")
+    cut = truncation(path)
+    if cut:
+        raise TrawlError(f"{path}: the file is truncated ({cut}; only the first {info.frames / info.samplerate:.1f} s "
+                         "would decode): copy it again from its source")
     pieces = []
     stream = None if info.samplerate == SAMPLE_RATE else soxr.ResampleStream(info.samplerate, SAMPLE_RATE, 1, dtype="float32", quality="HQ")
     try:
@@ -71,3 +77,45 @@ def load(path: Path | str, block_seconds: float = 60.0) -> np.ndarray:
     if not np.isfinite(x).all():
         raise TrawlError(f"{path}: the audio holds invalid (non-finite) samples")
     return x
+
+
+OGG_MAX_PAGE = 27 + 255 + 255 * 255  # RFC 3533: header, 255 lacing values, 255 segments of 255 bytes
+
+
+def truncation(path: Path) -> str | None:
+    """Why a file that decodes looks cut short, from its container, or None. Decoders read a cut
+    Ogg or WAV file to where it stops without a word; the container says more:
+    - Ogg (RFC 3533): a whole stream ends with a complete page carrying the end-of-stream flag (0x04);
+    - WAV (RIFF): the data chunk declares its size in bytes, which the file must hold.
+    (FLAC and MP3 cut mid-frame make the decoder itself fail, which `load` reports.)"""
+    import struct
+
+    ext = path.suffix.lower()
+    size = path.stat().st_size
+    with open(path, "rb") as f:
+        if ext in (".ogg", ".opus", ".oga"):
+            f.seek(max(0, size - OGG_MAX_PAGE))
+            tail = f.read()
+            k = tail.rfind(b"OggS")
+            if k < 0 or len(tail) - k < 27:
+                return "no complete Ogg page at its end"
+            nseg = tail[k + 26]
+            page = 27 + nseg + sum(tail[k + 27 : k + 27 + nseg])
+            if len(tail) - k < page:
+                return "its last Ogg page is cut off"
+            if not tail[k + 5] & 0x04:
+                return "its Ogg stream has no end-of-stream page"
+        elif ext == ".wav":
+            head = f.read(12)
+            if len(head) < 12 or head[:4] != b"RIFF" or head[8:12] != b"WAVE":
+                return None  # RF64 and other variants: the decoder decides
+            pos = 12
+            while pos + 8 <= size:
+                f.seek(pos)
+                cid, n = struct.unpack("<4sI", f.read(8))
+                if cid == b"data":
+                    if n not in (0, 0xFFFFFFFF) and pos + 8 + n > size:  # 0 / all ones: length left open by a streaming writer
+                        return f"its data chunk declares {n} bytes, the file holds {size - pos - 8}"
+                    return None
+                pos += 8 + n + (n & 1)
+    return None

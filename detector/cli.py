@@ -34,6 +34,10 @@ if not out.is_terminal:  # piped or captured: keep table rows on one line each
 err = Console(stderr=True)
 
 
+INTERNAL_ERROR = 70  # EX_SOFTWARE of sysexits.h: a fault of Trawl's own (2 is typer's usage error)
+WaitOpt = typer.Option(False, "--wait", help="If another command is writing the index, wait for it instead of refusing.")
+
+
 def friendly(fn):
     """Run a command; turn errors into one line on stderr and a non-zero exit."""
 
@@ -41,9 +45,9 @@ def friendly(fn):
     def wrapper(*args, **kwargs):
         try:
             return fn(*args, **kwargs)
-        except TrawlError as e:
+        except TrawlError as e:  # exit codes (README): 1 refused, 3 index damaged, 75 index busy
             err.print(f"[bold red]error:[/] {e}", highlight=False, soft_wrap=True)
-            raise typer.Exit(1)
+            raise typer.Exit(getattr(e, "exit_code", 1))
         except KeyboardInterrupt:
             err.print("interrupted: finished broadcasts are kept; run the same command again to resume")
             raise typer.Exit(130)
@@ -54,7 +58,7 @@ def friendly(fn):
                 raise
             err.print(f"[bold red]error:[/] unexpected {type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''}",
                       highlight=False, soft_wrap=True)
-            raise typer.Exit(2)
+            raise typer.Exit(INTERNAL_ERROR)
 
     return wrapper
 
@@ -72,12 +76,15 @@ def index_cmd(
     index: Path = typer.Option(..., "--index", "-i", help="Index folder to create or add to."),
     models: Optional[str] = ModelsOpt,
     as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON (for programs) instead of a table."),
+    wait: bool = WaitOpt,
 ):
     """Index a folder of broadcasts so its words can be searched.
 
-    Files already indexed with the same content are skipped; changed files are indexed again.
+    Files already indexed with the same content are skipped; changed files are indexed again;
+    files gone from the folder are taken out of the index (a renamed file keeps its work).
     If a run is interrupted, the broadcasts that finished are kept: run the same command again
-    to carry on. Silence and music without speech are not indexed.
+    to carry on; damaged index files are found and their broadcasts embedded again.
+    Silence and music without speech are not indexed. Exits 1 if any file failed.
     """
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
@@ -87,8 +94,10 @@ def index_cmd(
 
     if not find_audio(archive):  # check before any progress bar or index folder appears
         raise TrawlError(f"no audio files (WAV, FLAC, MP3, Ogg/Opus) under {archive}")
+    if index.exists() and not index.is_dir():
+        raise TrawlError(f"{index} is a file, not an index folder: choose an empty or new folder")
     if (index / "trawl-index.json").exists():
-        Index.open(index).check_models(load(models))
+        Index.check_manifest(Index.read_manifest(index), index, load(models))
     state = {"audio": 0.0}
     with Progress(TextColumn("[bold]{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total} files"),
                   TextColumn("{task.fields[hours]:.2f} h audio"), TextColumn("{task.fields[speed]}"),
@@ -108,23 +117,38 @@ def index_cmd(
                 if info["status"] == "failed":
                     prog.console.print(f"[yellow]skipped[/] {info.get('error', info['path'])}", highlight=False, soft_wrap=True)
 
-        rep = index_archive(archive, index, models, progress=progress)
+        rep = index_archive(archive, index, models, progress=progress, wait=wait)
     if as_json:
         _print_json({"indexed": rep.indexed, "unchanged": rep.unchanged,
                      "failed": [{"path": p, "error": e} for p, e in rep.failed],
+                     "removed": rep.removed, "renamed": [list(r) for r in rep.renamed], "repaired": rep.repaired,
                      "audio_seconds": rep.audio_seconds, "not_indexed_seconds": rep.skipped_seconds,
-                     "windows": rep.windows, "wall_seconds": rep.wall_seconds})
+                     "windows_added": rep.windows, "total_broadcasts": rep.total_broadcasts,
+                     "total_windows": rep.total_windows, "wall_seconds": rep.wall_seconds})
+        if rep.failed:
+            raise typer.Exit(1)
         return
     t = Table(title=f"Index {index}", show_header=False)
     t.add_row("broadcasts indexed now", str(len(rep.indexed)))
     t.add_row("unchanged (skipped)", str(len(rep.unchanged)))
     t.add_row("failed (skipped)", str(len(rep.failed)))
-    t.add_row("audio indexed", f"{rep.audio_seconds / 3600:.2f} h")
+    for label, items in (("gone from the archive (removed)", rep.removed), ("renamed (work kept)", [f"{a} -> {b}" for a, b in rep.renamed]),
+                         ("left out on request (trawl remove)", rep.excluded), ("damaged index files (re-embedded)", rep.repaired)):
+        if items:
+            t.add_row(label, f"{len(items)}: {'; '.join(items[:5])}{' ...' if len(items) > 5 else ''}")
+    t.add_row("audio indexed now", f"{rep.audio_seconds / 3600:.2f} h")
     if rep.audio_seconds:
         t.add_row("not indexed (silence, music)", f"{rep.skipped_seconds / 60:.1f} min ({100 * rep.skipped_seconds / rep.audio_seconds:.0f}%)")
         t.add_row("speed", f"{rep.audio_seconds / max(rep.wall_seconds, 1e-6):.0f}x real time")
-    t.add_row("windows stored", str(rep.windows))
+    t.add_row("windows added now", str(rep.windows))
+    t.add_row("in the index now", f"{rep.total_broadcasts} broadcasts, {rep.total_windows} windows")
     out.print(t)
+    if rep.failed:
+        for path, e in rep.failed:
+            err.print(f"[yellow]failed:[/] {e}", highlight=False, soft_wrap=True)
+        err.print(f"{len(rep.failed)} file(s) failed and are not searchable; `trawl status --index {index}` lists them",
+                  highlight=False, soft_wrap=True)
+        raise typer.Exit(1)
 
 
 # ----------------------------------------------------------------- search
@@ -135,6 +159,10 @@ def _read_terms(terms: List[str], terms_file: Optional[Path]) -> List[str]:
             text = terms_file.read_text(encoding="utf-8-sig")
         except FileNotFoundError:
             raise TrawlError(f"terms file {terms_file} not found") from None
+        except IsADirectoryError:
+            raise TrawlError(f"terms file {terms_file} is a folder: give a text file with one term per line") from None
+        except OSError as e:
+            raise TrawlError(f"terms file {terms_file} cannot be read ({e.strerror})") from None
         except UnicodeDecodeError:
             raise TrawlError(f"terms file {terms_file} is not UTF-8 text") from None
         allterms += [ln.strip() for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
@@ -212,6 +240,8 @@ def search_cmd(
     all_terms = ["(example)"] if by_example else _read_terms(terms, terms_file)
     rs = load_rules(rules) if rules else None
     s = Searcher(index, models, rules=rs, adapt=not no_adapt)
+    for w in s.warnings:
+        err.print(f"[yellow]warning:[/] {w}", highlight=False, soft_wrap=True)
     ex_vecs = []
     for item in like or []:
         ex_vecs.append(s.window_vector(*_parse_span(item, "--like")))
@@ -317,8 +347,8 @@ def calibrate_cmd(
 
     t.add_row("checked hits (correct)", f"{r.get('n', '')} ({r.get('n_correct', '')})", "")
     t.add_row("threshold (confidence)", f"{cal.threshold:.3f}", "")
-    t.add_row(f"precision at threshold (target {cal.target_precision:.2f})", num("precision"), iv("precision_interval"))
-    t.add_row("recall at threshold (of checked correct hits)", num("recall"), iv("recall_interval"))
+    t.add_row(f"precision at threshold (target {cal.target_precision:.2f})", num("precision"), iv("precision_ci"))
+    t.add_row("recall at threshold (of checked correct hits)", num("recall"), iv("recall_ci"))
     t.add_row("expected calibration error", num("ece"), "")
     t.add_row("Brier score", num("brier"), "")
     per_term = cal.twv.get("per_term", {})
@@ -399,7 +429,8 @@ def rules_set(file: Path = typer.Argument(..., help="Rules file (see the README 
     from .rules import load_rules
 
     rs = load_rules(file)
-    Index.open(index).write_text("rules.txt", file.read_text(encoding="utf-8-sig"))
+    with Index.open(index).settings_change() as idx:
+        idx.write_text("rules.txt", file.read_text(encoding="utf-8-sig"))
     out.print(f"stored {len(rs)} rules in {index}")
 
 
@@ -484,7 +515,8 @@ def rules_clear(index: Path = IndexOpt):
     """Remove the stored rules."""
     from .index_store import Index
 
-    Index.open(index).write_text("rules.txt", None)
+    with Index.open(index).settings_change() as idx:
+        idx.write_text("rules.txt", None)
     out.print("rules removed")
 
 
@@ -539,8 +571,11 @@ def demo_cmd(
 @app.command("status")
 @friendly
 def status_cmd(index: Path = IndexOpt,
-               as_json: bool = typer.Option(False, "--json", help="Print the status as JSON (for programs) instead of a table.")):
-    """What an index holds: broadcasts, hours, model, calibration, rules, adaptation."""
+               as_json: bool = typer.Option(False, "--json", help="Print the status as JSON (for programs) instead of a table."),
+               verify: bool = typer.Option(False, "--verify", help="Check every index file against the sizes and "
+                                           "SHA-256 recorded when it was written; exit 3 if any is damaged.")):
+    """What an index holds: broadcasts, hours, model, calibration, rules, adaptation, failed files.
+    Reads only: nothing in the index is created or changed."""
     from .index_store import Index
 
     from .rule_learning import LEARNED_RULES_FILE
@@ -552,7 +587,7 @@ def status_cmd(index: Path = IndexOpt,
     qm = idx.read_setting("query_map.json")
     lr = idx.read_setting(LEARNED_RULES_FILE)
     n_rules = len(lr.get("rules", "").splitlines()) if lr else 0
-    fails = idx.db.execute("select path, error from failures").fetchall()
+    fails = idx.failures()
     facts = {  # one word for a setting's state everywhere: on or off
         "broadcasts": len(b), "audio_hours": round(sum(r["duration"] for r in b) / 3600, 4),
         "windows": sum(r["n_windows"] for r in b), "model_card": idx.manifest["model_card_sha256"][:16],
@@ -562,7 +597,9 @@ def status_cmd(index: Path = IndexOpt,
         "learned_rules": "on" if lr and lr.get("enabled") else "off",
         "learned_rules_count": n_rules, "failed_files": [{"path": p, "error": e} for p, e in fails],
     }
-    if as_json:
+    if idx.excluded():
+        facts["left_out_on_request"] = sorted(idx.excluded())
+    if as_json and not verify:
         _print_json(facts)
         return
     t = Table(title=f"Index {index}", show_header=False)
@@ -577,7 +614,52 @@ def status_cmd(index: Path = IndexOpt,
     t.add_row("adaptation: learned rules", facts["learned_rules"] + (f" ({n_rules} rules)" if lr else " (not learned)")
               + (", did not help" if lr and not lr.get("enabled") else ""))
     t.add_row("failed files", str(len(fails)))
-    out.print(t)
+    for path, e in fails:
+        t.add_row(f"  {path}", e)
+    if idx.excluded():
+        t.add_row("left out on request", ", ".join(sorted(idx.excluded())))
+    if not as_json:
+        out.print(t)
+    if verify:
+        from .integrity import verify as check
+
+        with idx.snapshot():
+            damage = check(idx)
+        if as_json:
+            facts["damaged_files"] = [{"file": d.file, "problem": d.what, "broadcasts": list(d.paths)} for d in damage]
+            _print_json(facts)
+            if damage:
+                raise typer.Exit(3)
+            return
+        if not damage:
+            out.print("verified: every index file matches what was recorded when it was written")
+            return
+        v = Table(title="Damaged index files")
+        v.add_column("file")
+        v.add_column("problem")
+        v.add_column("broadcasts it holds")
+        for d in damage:
+            v.add_row(d.file, d.what, ", ".join(d.paths))
+        out.print(v)
+        err.print(f"[bold red]error:[/] {len(damage)} index file(s) damaged: run `trawl index "
+                  f"{idx.manifest.get('archive', 'ARCHIVE_DIR')} --index {index}` to repair them "
+                  "(only the broadcasts they hold are embedded again)", highlight=False, soft_wrap=True)
+        raise typer.Exit(3)
+
+
+@app.command("remove")
+@friendly
+def remove_cmd(broadcasts: List[str] = typer.Argument(..., help="Broadcasts as search lists them (path relative to the archive folder)."),
+               index: Path = IndexOpt,
+               restore: bool = typer.Option(False, "--restore", help="Let later `trawl index` runs index these again."),
+               wait: bool = WaitOpt):
+    """Take broadcasts out of an index now (for consent or access policy) and keep them out of
+    later runs; the audio files are not touched."""
+    from .indexing import remove_from_index
+
+    done = remove_from_index(index, broadcasts, restore=restore, wait=wait)
+    out.print(f"{'restored (the next trawl index run indexes them)' if restore else 'removed from the index'}: "
+              f"{', '.join(done)}", highlight=False)
 
 
 def _print_json(obj) -> None:

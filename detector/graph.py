@@ -44,27 +44,66 @@ class ShardedGraph:
         self.shards: list = []
         self.changed: set[int] = set()
         self._pool: ThreadPoolExecutor | None = None
+        self.alive: np.ndarray | None = None  # labels still in the catalogue (hnswlib cannot list the deleted ones)
+        self.root: Path | None = None  # where it was loaded from, for messages
+
+    def damaged(self, e: Exception):
+        """hnswlib's own error on a graph file whose size is right but whose content is not."""
+        from . import IndexDamaged
+
+        where = self.root or "the index"
+        return IndexDamaged(f"the graph in {where} answers inconsistently ({str(e).splitlines()[0][:60]}): it is damaged; "
+                            f"run `trawl status --verify --index {where}`, then `trawl index ARCHIVE_DIR --index {where}` to repair it")
 
     # ----------------------------------------------------------- files
     @classmethod
-    def load(cls, root: Path, dim: int, M: int, ef_construction: int, capacity: int, total: int) -> "ShardedGraph":
+    def load(cls, root: Path, dim: int, M: int, ef_construction: int, capacity: int, total: int,
+             count: int | None = None, skip: frozenset = frozenset()) -> "ShardedGraph":
+        """The shards in `root`: `count` of them when the catalogue records how many (a missing or
+        skipped one, e.g. damaged, stands as an empty shard), else every file in sequence."""
         import hnswlib
 
         g = cls(dim, M, ef_construction, capacity)
+        g.root = Path(root)
         k = 0
-        while (Path(root) / shard_file(k)).exists():
+        while (k < count) if count is not None else (Path(root) / shard_file(k)).exists():
+            path = Path(root) / shard_file(k)
+            if k in skip or not path.exists():
+                g._shard(k)
+                k += 1
+                continue
             s = hnswlib.Index(space="ip", dim=dim)
             room = min(capacity, max(total - k * capacity, 1000))
-            s.load_index(str(Path(root) / shard_file(k)), max_elements=max(room, 1000))
+            try:
+                s.load_index(str(path), max_elements=max(room, 1000))
+            except (RuntimeError, OSError, MemoryError) as e:
+                from . import IndexDamaged
+
+                raise IndexDamaged(f"the graph file {path} is damaged ({str(e).splitlines()[0][:60]}): run "
+                                   f"`trawl index ARCHIVE_DIR --index {Path(root)}` to repair it") from None
             g.shards.append(s)
             k += 1
         return g
 
-    def save(self, root: Path, atomic_write_file) -> None:
-        """Write the shards that changed, each atomically (`atomic_write_file(path, writer)`)."""
-        for k in sorted(self.changed):
+    def save(self, root: Path, atomic_write_file) -> list[int]:
+        """Write the shards that changed, each atomically (`atomic_write_file(path, writer)`); returns their numbers."""
+        written = sorted(self.changed)
+        for k in written:
             atomic_write_file(Path(root) / shard_file(k), self.shards[k].save_index)
         self.changed.clear()
+        return written
+
+    def remove(self, labels) -> None:
+        """Take labels out of every future answer (hnswlib marks them deleted; the file keeps them)."""
+        labels = np.asarray(labels, np.int64).reshape(-1)
+        for lab in labels:
+            k = int(lab // self.capacity)
+            if k < len(self.shards):
+                try:
+                    self.shards[k].mark_deleted(int(lab))
+                    self.changed.add(k)
+                except RuntimeError:  # not in the graph (never merged, or already removed)
+                    pass
 
     # ----------------------------------------------------------- building
     def _shard(self, k: int):
@@ -105,7 +144,10 @@ class ShardedGraph:
         which = labels // self.capacity
         for k in np.unique(which):
             sel = which == k
-            out[sel] = np.asarray(self.shards[int(k)].get_items(labels[sel]), np.float32).reshape(-1, self.dim)
+            try:
+                out[sel] = np.asarray(self.shards[int(k)].get_items(labels[sel]), np.float32).reshape(-1, self.dim)
+            except (RuntimeError, IndexError) as e:
+                raise self.damaged(e) from None
         return out
 
     def knn_query(self, queries: np.ndarray, k: int, num_threads: int = 1) -> tuple[np.ndarray, np.ndarray]:
@@ -116,7 +158,14 @@ class ShardedGraph:
             raise ValueError("the graph is empty")
 
         def one(s):
-            return s.knn_query(queries, k=min(k, s.get_current_count()), num_threads=num_threads)
+            kk = min(k, s.get_current_count())
+            try:
+                return s.knn_query(queries, k=kk, num_threads=num_threads)
+            except RuntimeError:  # asked for (nearly) every element: hnswlib finds fewer than k; answer exactly
+                try:
+                    return exact_knn(s, queries, kk, self.alive)
+                except (RuntimeError, IndexError) as e:
+                    raise self.damaged(e) from None
 
         if len(live) == 1:
             return one(live[0])
@@ -127,3 +176,16 @@ class ShardedGraph:
         dist = np.concatenate([p[1] for p in parts], axis=1)
         order = np.argsort(dist, axis=1, kind="stable")[:, :k]
         return np.take_along_axis(labels, order, 1), np.take_along_axis(dist, order, 1)
+
+
+def exact_knn(shard, queries: np.ndarray, k: int, alive: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Brute-force k nearest (inner product) over a shard's live elements (those in `alive`, when
+    given), in knn_query's layout; fewer than k columns when the shard holds fewer."""
+    ids = np.asarray(shard.get_ids_list(), np.int64)
+    if alive is not None:
+        ids = ids[np.isin(ids, alive)]
+    vecs = np.asarray(shard.get_items(ids), np.float32).reshape(len(ids), -1) if len(ids) else np.zeros((0, queries.shape[1]), np.float32)
+    sims = queries @ vecs.T
+    kk = min(k, len(ids))
+    order = np.argsort(-sims, axis=1, kind="stable")[:, :kk]
+    return ids[order].astype(np.uint64), (1.0 - np.take_along_axis(sims, order, 1)).astype(np.float32)

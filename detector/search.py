@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import TrawlError
+from . import IndexDamaged, TrawlError
 from .graph import query_ef
 from .hits import Hit
 from .index_store import Index
@@ -97,9 +97,12 @@ class Searcher:
         self.index = Index.open(Path(index_dir))
         self.models = load(models_dir)
         self.index.check_models(self.models)
-        self.graph = self.index.load_graph()
-        self.names, self.firsts, self.counts, self.spans = self.index.window_table()
-        if self.graph.get_current_count() == 0 or not len(self.firsts):
+        self.warnings: list[str] = []  # said once per searcher: damaged broadcasts left out
+        with self.index.snapshot():  # the last finished state, even while a run is writing
+            self._open_snapshot()
+        if self.graph.get_current_count() == 0 or not self.counts.sum():
+            if self.warnings:  # everything it holds is in damaged files
+                raise IndexDamaged(f"the index at {self.index.root} holds no windows that can be searched: {self.warnings[0]}")
             raise TrawlError(f"the index at {self.index.root} holds no windows yet")
         self.total_seconds = self.index.total_seconds()
         # label -> window: labels of a broadcast are contiguous, so one flat array per field suffices
@@ -116,7 +119,10 @@ class Searcher:
         learned = LearnedRules.from_dict(lr) if lr else None
         self.learned_rules = learned.ruleset() if learned is not None and learned.enabled else None
         rng = np.random.default_rng(0)
-        live = np.concatenate([np.arange(f, f + c) for f, c in zip(self.firsts, self.counts)])
+        # drawn over the windows in broadcast-name order, not label order: a broadcast embedded again
+        # (repaired, changed) gets new labels, and the sample, hence every score, must not move
+        by_name = sorted(range(len(self.names)), key=self.names.__getitem__)
+        live = np.concatenate([np.arange(self.firsts[i], self.firsts[i] + self.counts[i]) for i in by_name])
         pick = live if len(live) <= BACKGROUND_SAMPLE else rng.choice(live, BACKGROUND_SAMPLE, replace=False)
         self.background_labels = np.sort(pick)
         self.background = self.index.vectors(self.background_labels)
@@ -128,6 +134,28 @@ class Searcher:
         self.uncalibrated_centre = float(r.get("centre", 0.0)) if self.letter_pass else UNCALIBRATED_CENTRE
         self.uncalibrated_scale = float(r.get("scale", 1.0)) if self.letter_pass else UNCALIBRATED_SCALE
         self._pooled: dict = {}  # (term, use_map) -> Ranked, for re-scoring checked rows
+
+    def _open_snapshot(self) -> None:
+        """Catalogue rows, graph, pending vectors and letters, read as one state. A broadcast held by
+        a missing or damaged file (sizes against the catalogue's record) is left out, and said once."""
+        from .integrity import verify
+
+        rows = self.index.broadcasts()
+        damage = verify(self.index, hashes=False, rows=rows)
+        bad = {i for d in damage for i in d.ids}
+        if damage:
+            paths = sorted({p for d in damage for p in d.paths})
+            self.warnings.append(
+                f"{len(paths)} damaged broadcast(s) left out of this search ({', '.join(paths[:3])}"
+                f"{' ...' if len(paths) > 3 else ''}: {damage[0].line()}); run `trawl status --verify --index "
+                f"{self.index.root}` for details and `trawl index ARCHIVE_DIR --index {self.index.root}` to repair")
+        shards = frozenset(d.shard for d in damage if d.shard is not None)
+        # labels of left-out broadcasts are never located: their counts become 0
+        self.rows = [dict(b, n_windows=0) if b["id"] in bad else b for b in rows]
+        self.graph = self.index.load_graph(skip_shards=shards, rows=[b for b in self.rows if b["n_windows"]])
+        self.names, self.firsts, self.counts, self.spans = self.index.window_table(self.rows)
+        self.spans = [(st[:n], kd[:n]) for (st, kd), n in zip(self.spans, self.counts)]
+        self._letters = {i: self.index.letters(b) for i, b in enumerate(self.rows) if b["n_windows"]}
 
     # ------------------------------------------------------------ queries
     def spelling_vector(self, term: str, use_map: bool = True) -> tuple[str, str, np.ndarray]:
@@ -220,7 +248,7 @@ class Searcher:
         """The candidate stretches of a query, scored, with their ranking after NMS (see the module text)."""
         v = (vector / np.linalg.norm(vector)).astype(np.float32)
         ids = self.letter_targets(term) if (self.letter_pass and n_letters) else []
-        n = self.graph.get_current_count()
+        n = int(self.counts.sum())  # live windows (the graph may still hold removed ones, never returned)
         k = min(n, candidates or max(POOL_WINDOWS if ids else 300, 40 * (top or 25)))
         self.graph.set_ef(query_ef(k, self.graph.largest_shard()))
         labels, dist = self.graph.knn_query(v[None], k=k, num_threads=1)
@@ -249,9 +277,7 @@ class Searcher:
         return letter_ids(self.spelling_vector(term, use_map=False)[1], self.models.letter_table)
 
     def broadcast_letters(self, b: int):
-        if b not in self._letters:
-            self._letters[b] = self.index.letters(int(self.firsts[b]))
-        return self._letters[b]
+        return self._letters.get(b)
 
     def align(self, ids: list[int], bi: np.ndarray, starts: np.ndarray, ends: np.ndarray):
         """Alignment cost (<= 0, -inf where none fits) and aligned times of each candidate stretch."""

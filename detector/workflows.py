@@ -17,6 +17,7 @@ from . import TrawlError
 from .calibration import Calibration, best_first_depth, best_first_sample, fit_calibration, hit_features, reliability_svg, suggest_sample
 from .checked import read_checked, sample_hash
 from .hits import Hit
+from .index_store import Index
 from .letters import dequantise, quantise
 from .search import Searcher
 from .spelling import letter_count, word_type
@@ -58,7 +59,14 @@ def score_checked(searcher: Searcher, path: Path, use_map: bool = True) -> Score
 
 def calibrate(index_dir: Path, checked: Path, target_precision: float = 0.9, diagram: Path | None = None,
               models_dir: str | None = None) -> tuple[Calibration, Path]:
-    """Fit and store a calibration from a checked sample; write the reliability diagram."""
+    """Fit and store a calibration from a checked sample; write the reliability diagram.
+    A refused sample leaves every index file as it was."""
+    with Index.open(index_dir).settings_change():
+        return _calibrate(index_dir, checked, target_precision, diagram, models_dir)
+
+
+def _calibrate(index_dir: Path, checked: Path, target_precision: float, diagram: Path | None,
+               models_dir: str | None) -> tuple[Calibration, Path]:
     searcher = Searcher(index_dir, models_dir)
     sc = score_checked(searcher, Path(checked))
     cal = fit_calibration(sc.X, sc.y, sc.terms, target_precision=target_precision,
@@ -156,7 +164,12 @@ def aligned_examples(searcher: Searcher, corpus: Path, max_words: int = MAX_ALIG
 def adapt(index_dir: Path, checked: Path, models_dir: str | None = None, aligned: Path | None = None) -> dict:
     """Learn the query side from a checked sample (and optionally an aligned corpus): respelling
     rules, then a map after the spelling encoder; store each (versioned) and switch on those
-    that help held-out terms."""
+    that help held-out terms. All or nothing: a refused sample leaves every index file as it was."""
+    with Index.open(index_dir).settings_change():
+        return _adapt(index_dir, checked, models_dir, aligned)
+
+
+def _adapt(index_dir: Path, checked: Path, models_dir: str | None, aligned: Path | None) -> dict:
     from .adaptation import fit_query_map
     from .api import embed_spellings
     from .rule_learning import LEARNED_RULES_FILE, Evidence, fit_learned_rules

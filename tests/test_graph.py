@@ -79,3 +79,19 @@ def test_an_index_made_before_shards_stays_one_graph(tmp_path):
     again = ShardedGraph.load(tmp_path, 8, 16, 100, UNSHARDED, total=50)
     assert len(again.shards) == 1 and [p.name for p in tmp_path.iterdir()] == ["graph.hnsw"]
     np.testing.assert_allclose(again.get_items(np.arange(50)), vecs, atol=1e-6)
+
+
+def test_asking_for_every_element_answers_as_brute_force_does():
+    """`--top 3000` on a small index asks for about every stored window, more than hnswlib's search
+    can return (one is removed): the answer falls back to exact search, checked against numpy."""
+    vecs = unit_rows(60, 8, 5)
+    g = ShardedGraph(8, 16, 100, capacity=40)
+    g.add_items(vecs, np.arange(60))
+    g.remove([7])
+    g.alive = np.setdiff1d(np.arange(60), [7])
+    q = unit_rows(1, 8, 6)
+    labels, dist = g.knn_query(q, k=59)
+    ref = np.argsort(-(vecs @ q[0]), kind="stable")
+    ref = ref[ref != 7]
+    assert labels[0].astype(int).tolist() == ref.tolist()
+    np.testing.assert_allclose(dist[0], 1 - vecs[ref] @ q[0], atol=1e-5)

@@ -109,7 +109,7 @@ def test_index_stores_letter_posteriors_per_broadcast(models, joined_broadcast, 
     index_archive(folder, tmp_path / "idx")
     idx = Index.open(tmp_path / "idx")
     row = idx.broadcasts()[0]
-    post = idx.letters(row["first_label"])
+    post = idx.letters(row)
     assert post.dtype == np.uint8 and post.shape[1] == len(models.alphabet) + 1
     assert abs(len(post) - row["duration"] / 0.02) <= 2
     # each frame is a distribution: the probabilities of the dequantised frame sum to about one

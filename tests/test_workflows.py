@@ -88,6 +88,55 @@ def test_adapt_reports_both_levers_and_stores_the_learned_rules(checked):
     assert code == 0 and "learned rules" in text
 
 
+@pytest.mark.slow
+def test_a_refused_adapt_keeps_what_an_earlier_adaptation_learned(checked, tmp_path):
+    """Issue 16, case 7: after a valid adaptation, an all-no sample and a six-row sample are refused
+    (adaptation.MIN_HITS is 10) and every index file stays as it was, the learned rules included."""
+    idx, sample = checked
+    code, text = run("adapt", "--index", idx, "--checked", sample)
+    assert code == 0, text
+    before = {p.name: p.read_bytes() for p in idx.iterdir() if p.is_file()}
+    assert "learned_rules.json" in before
+    with open(sample, newline="", encoding="utf-8") as f:
+        rows = list(csv.reader(f))
+    for name, body in (("all-no", [r[:4] + ["no"] for r in rows[1:]]), ("six", rows[1:7])):
+        bad = tmp_path / f"{name}.csv"
+        with open(bad, "w", newline="", encoding="utf-8") as f:
+            csv.writer(f).writerows([rows[0]] + body)
+        code, text = run("adapt", "--index", idx, "--checked", bad)
+        assert code == 1 and text.strip().startswith("error:") and "Traceback" not in text, text
+        assert {p.name: p.read_bytes() for p in idx.iterdir() if p.is_file()} == before, name
+
+
+@pytest.mark.slow
+def test_calibrate_prints_the_wilson_intervals_it_stored(checked, tmp_path):
+    """Issue 16, case 11: the 95% cells of precision and recall were empty (the table read a key the
+    report does not write). The printed cells are the stored intervals, recomputed here from the
+    stored counts by Wilson's score interval (Wilson 1927, JASA 22: centre (p + z^2/2n) / (1 + z^2/n),
+    half-width z sqrt(p(1-p)/n + z^2/4n^2) / (1 + z^2/n), z = 1.95996 for 95%)."""
+    import json
+    import math
+
+    def wilson(k, n, z=1.959964):
+        if n == 0:  # nothing to estimate from: the whole range
+            return 0.0, 1.0
+        p = k / n
+        centre, half = (p + z * z / (2 * n)) / (1 + z * z / n), z * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / (1 + z * z / n)
+        return centre - half, centre + half
+
+    idx, sample = checked
+    code, text = run("calibrate", "--index", idx, "--checked", sample, "--diagram", tmp_path / "rel.svg",
+                     "--target-precision", "0.5")
+    assert code == 0, text
+    r = json.loads((idx / "calibration.json").read_text())["report"]
+    assert r["accepted"] > 0  # a real interval, not the empty case
+    tp = round(r["recall"] * r["n_correct"])
+    for key, n in (("precision_ci", r["accepted"]), ("recall_ci", r["n_correct"])):
+        lo, hi = wilson(tp, n)
+        assert abs(r[key][0] - lo) < 1e-6 and abs(r[key][1] - hi) < 1e-6
+        assert f"{r[key][0]:.2f}-{r[key][1]:.2f}" in text
+
+
 def test_adapt_suggests_each_terms_best_hits_first_as_a_sample_to_fill_in(checked, tmp_path):
     idx, sample = checked
     terms = sorted({r["term"] for r in csv.DictReader(open(sample, encoding="utf-8"))})
