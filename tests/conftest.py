@@ -6,7 +6,7 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 CORPUS = ROOT.parent / "shared" / "corpora" / "mboshi"
-RUNTIME = ("onnxruntime", "numpy", "librosa", "soundfile", "hnswlib", "typer", "rich")  # pyproject's dependencies
+RUNTIME = ("onnxruntime", "numpy", "librosa", "soundfile", "hnswlib", "typer", "rich", "anyascii")  # pyproject's dependencies
 
 
 def pytest_sessionstart(session):
