@@ -511,7 +511,7 @@ def evaluation_table(res: dict, where: str = "at the applied threshold") -> Tabl
     for term, r in res["per_term"].items():
         t.add_row(term, str(r["occurrences"]), f"{r['twv']:.3f}" if r["twv"] is not None else "-", f"{r['p_at_10']:.2f}", f"{r['recall_at_100']:.2f}")
     t.add_row("[bold]all terms[/]", str(res["occurrences"]), f"{res['atwv']:.3f}", f"{res['p_at_10']:.2f}", f"{res['recall_at_100']:.2f}")
-    t.caption = f"MTWV {res['mtwv']:.3f} (at score {res['mtwv_threshold']:.2f}); ATWV {where} {res['atwv']:.3f}"
+    t.caption = f"MTWV {res['mtwv']:.3f} (at {res.get('ranked_by', 'score')} {res['mtwv_threshold']:.2f}); ATWV {where} {res['atwv']:.3f}"
     return t
 
 

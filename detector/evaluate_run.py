@@ -61,5 +61,6 @@ def evaluate(index_dir: Path, reference_path: Path, terms: list[str], models_dir
         from .search import twv_margin  # uncalibrated: each term's TWV threshold (keyword-specific thresholding)
 
         res = evaluate_hits(hits, reference, terms, total, 0.0, key=twv_margin)
+        res["ranked_by"] = "margin over the term's TWV threshold (log-odds)"
     res["broadcasts"] = len(searched)
     return res

@@ -35,6 +35,7 @@ def test_keyword_alignment_equals_exhaustive_search(ids):
         d = logp - logp.max(axis=1, keepdims=True)
         assert cost[0] == pytest.approx(brute_force_cost(d, ids), abs=1e-5)
         assert 0 <= first[0] <= last[0] < 6
+        assert L.keyword_scores([logp], ids, with_times=False)[0][0] == pytest.approx(brute_force_cost(d, ids), abs=1e-5)
 
 
 def test_keyword_alignment_hand_worked():

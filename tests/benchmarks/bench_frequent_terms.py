@@ -7,7 +7,10 @@ Builds broadcasts in which command words of a multi-speaker corpus (default
 occurrence by another speaker where the corpus allows, cut from the corpus by its word times
 and placed between sentences of running speech (held-out Mboshi utterances, never trained on),
 joined as exporters/broadcasts.py joins them (pauses of 0.3-1.0 s, broadcasts of ~5 minutes).
-Then it indexes the broadcasts and searches every term, 30 corpus words never spoken there
+With `--terms-corpus ../shared/corpora/mboshi` the broadcasts are instead the held-out Mboshi
+sentences as the search benchmark joins them (two speakers the models were trained on, sentences
+they never heard), and every word type of at least 5 letters is a term, spoken as often as the
+sentences say it. Then it indexes the broadcasts and searches every term, 30 corpus words never spoken there
 (phantoms) and the terms written in scripts the model does not read, and reports:
 
 * MTWV (NIST 2006, beta 999.9, 0.5 s tolerance) per occurrence group, with the current
@@ -57,6 +60,7 @@ TOP = 100
 SAMPLE_PER_TERM = 40  # checked hits per term in the calibration sample
 OTHER_SCRIPTS = ["Москва", "ירושלים", "北京", "አዲስ አበባ", "القاهرة"]  # Cyrillic, Hebrew, Han, Ethiopic, Arabic
 PHANTOMS = 30
+MIN_NATURAL = 5  # letters of a term in the held-out Mboshi mode
 GROUPS = {"1": (1, 1), "2-5": (2, 5), "6+": (6, 10**9)}
 
 
@@ -73,8 +77,22 @@ def word_tokens(corpus: Path) -> dict[str, list[tuple[Utterance, float, float]]]
     return out
 
 
+def build_natural(out: Path, small: bool, seed: int) -> tuple[dict, list]:
+    """Held-out Mboshi broadcasts as the search benchmark builds them; every word type of at least
+    MIN_NATURAL letters is a term, spoken as often as the held-out sentences happen to say it."""
+    builder.build(out, SHARED / "mboshi", 8.0 if small else None, seed, opus=False)
+    words = read_reference(out / "reference.tsv")
+    counts = defaultdict(int)
+    for *_, w in words:
+        counts[word_type(w)] += 1
+    return {w: n for w, n in sorted(counts.items()) if letter_count(w) >= MIN_NATURAL}, words
+
+
 def build(out: Path, terms_corpus: Path, small: bool, seed: int) -> dict:
     rng = np.random.default_rng(seed)
+    if terms_corpus.name == "mboshi":
+        plan, words = build_natural(out, small, seed)
+        return finish(out, terms_corpus, plan, words, rng, seed, small)
     tokens = word_tokens(terms_corpus)
     types = sorted(w for w in tokens if letter_count(w) >= 3)
     types = [types[i] for i in rng.permutation(len(types))]
@@ -110,6 +128,11 @@ def build(out: Path, terms_corpus: Path, small: bool, seed: int) -> dict:
         wr = csv.writer(f, delimiter="\t", lineterminator="\n")
         wr.writerow(["broadcast", "start", "end", "word"])
         wr.writerows((b, f"{s:.3f}", f"{e:.3f}", w) for b, s, e, w in words)
+    return finish(out, terms_corpus, plan, words, rng, seed, small)
+
+
+def finish(out: Path, terms_corpus: Path, plan: dict, words: list, rng, seed: int, small: bool) -> dict:
+    """Phantoms, terms in other scripts and the manifest."""
     spoken = {word_type(w) for *_, w in words}
     lexicon = sorted({w for u in load_corpus(SHARED / "mboshi") for _, _, w in u.words
                       if letter_count(w) >= 6 and w not in spoken})
@@ -179,12 +202,12 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--small", action="store_true", help="about 6 minutes of broadcasts and 18 terms (default ~22 min, 40)")
     ap.add_argument("--terms-corpus", type=Path, default=SHARED / "arabic-commands")
-    ap.add_argument("--work", type=Path, default=None, help="default runs/bench_frequent (…_small with --small)")
+    ap.add_argument("--work", type=Path, default=None, help="default runs/bench_frequent_CORPUS (_small with --small)")
     ap.add_argument("--seed", type=int, default=0)
     a = ap.parse_args(argv)
     if not (SHARED / "mboshi" / "words.tsv").exists() or not (a.terms_corpus / "words.tsv").exists():
         sys.exit(f"needs ../shared/corpora (mboshi and {a.terms_corpus.name}) beside the checkout")
-    work = a.work or ROOT / "runs" / ("bench_frequent_small" if a.small else "bench_frequent")
+    work = a.work or ROOT / "runs" / f"bench_frequent_{a.terms_corpus.name}{'_small' if a.small else ''}"
     t0 = time.time()
     if work.exists():
         shutil.rmtree(work)
