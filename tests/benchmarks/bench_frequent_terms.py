@@ -10,7 +10,10 @@ joined as exporters/broadcasts.py joins them (pauses of 0.3-1.0 s, broadcasts of
 With `--terms-corpus ../shared/corpora/mboshi` the broadcasts are instead the held-out Mboshi
 sentences as the search benchmark joins them (two speakers the models were trained on, sentences
 they never heard), and every word type of at least 5 letters is a term, spoken as often as the
-sentences say it. Then it indexes the broadcasts and searches every term, 30 corpus words never spoken there
+sentences say it; with `--cut` as well, the held-out Mboshi word tokens are cut out and placed
+in Swahili read speech (one speaker, never trained on, no term in its reference), as many word
+types spoken once, 2-5 and 6+ times (up to 28) as the held-out tokens allow. Then it indexes
+the broadcasts and searches every term, 30 corpus words never spoken there
 (phantoms) and the terms written in scripts the model does not read, and reports:
 
 * MTWV (NIST 2006, beta 999.9, 0.5 s tolerance) per occurrence group, with the current
@@ -69,9 +72,12 @@ def group_of(n: int) -> str:
 
 
 def word_tokens(corpus: Path) -> dict[str, list[tuple[Utterance, float, float]]]:
-    """Word type -> its tokens (utterance, start, end) in the corpus."""
+    """Word type -> its tokens (utterance, start, end) in the corpus (Mboshi: held-out utterances only)."""
     out = defaultdict(list)
-    for u in load_corpus(corpus):
+    utts = load_corpus(corpus)
+    if corpus.name == "mboshi":
+        utts = split_by_transcript(utts, builder.HELD_OUT_FRACTION)[1]
+    for u in utts:
         for s, e, w in u.words:
             out[w].append((u, s, e))
     return out
@@ -88,9 +94,27 @@ def build_natural(out: Path, small: bool, seed: int) -> tuple[dict, list]:
     return {w: n for w, n in sorted(counts.items()) if letter_count(w) >= MIN_NATURAL}, words
 
 
-def build(out: Path, terms_corpus: Path, small: bool, seed: int) -> dict:
+def untimed_utterances(corpus: Path) -> list[Utterance]:
+    """Utterances of a corpus without word times (running speech with no term in the reference)."""
+    with open(corpus / "utterances.tsv", encoding="utf-8") as f:
+        return [Utterance(r["utterance"], r["speaker"], r["transcript"], corpus / "audio" / f"{r['utterance']}.opus")
+                for r in csv.DictReader(f, delimiter="\t")]
+
+
+def mboshi_counts(tokens: dict, small: bool, rng) -> tuple[list[str], list[int]]:
+    """As many types spoken once, 2-5 and 6+ times as the held-out Mboshi tokens allow, each as often
+    as it is spoken there (6+ capped at 28), 4+ letters."""
+    avail = {w: len(t) for w, t in tokens.items() if letter_count(w) >= 4}
+    groups = [sorted(w for w, n in avail.items() if lo <= n <= hi) for lo, hi in GROUPS.values()]
+    k = min(len(g) for g in groups)
+    k = min(k, 8) if small else k
+    types = [w for g in groups for w in (g[i] for i in rng.permutation(len(g))[:k])]
+    return types, [min(avail[w], 10 if small else 28) for w in types]
+
+
+def build(out: Path, terms_corpus: Path, small: bool, seed: int, cut: bool = False) -> dict:
     rng = np.random.default_rng(seed)
-    if terms_corpus.name == "mboshi":
+    if terms_corpus.name == "mboshi" and not cut:
         plan, words = build_natural(out, small, seed)
         return finish(out, terms_corpus, plan, words, rng, seed, small)
     tokens = word_tokens(terms_corpus)
@@ -99,6 +123,8 @@ def build(out: Path, terms_corpus: Path, small: bool, seed: int) -> dict:
     counts = [1] * 6 + [2, 3, 4, 5, 2, 3] + [6, 8, 10, 6, 8, 10] if small else \
         [1] * 12 + [2, 3, 4, 5] * 3 + [6, 10, 16, 28] * 4
     counts = counts[: len(types)]
+    if terms_corpus.name == "mboshi":
+        types, counts = mboshi_counts(tokens, small, rng)
     pieces, plan = [], {}
     audio_cache: dict[str, np.ndarray] = {}
     for w, n in zip(types, counts):
@@ -114,7 +140,10 @@ def build(out: Path, terms_corpus: Path, small: bool, seed: int) -> dict:
             x = audio_cache[u.id][int(s * SR): int(e * SR)].astype(np.float32)
             pieces.append(Utterance(f"{u.id}_{w}_{k}", u.speaker, w, None, [(0.0, len(x) / SR, w)], audio=x))
         plan[w] = n
-    _, held = split_by_transcript(load_corpus(SHARED / "mboshi"), builder.HELD_OUT_FRACTION)
+    if terms_corpus.name == "mboshi":  # the words are Mboshi: the running speech around them is Swahili
+        held = untimed_utterances(SHARED / "swahili-read")
+    else:
+        _, held = split_by_transcript(load_corpus(SHARED / "mboshi"), builder.HELD_OUT_FRACTION)
     filler = builder.choose_utterances(held, 5.0 if small else 20.0, rng)
     mixed = [(pieces + filler)[i] for i in rng.permutation(len(pieces) + len(filler))]
     (out / "clean").mkdir(parents=True, exist_ok=True)
@@ -204,14 +233,16 @@ def main(argv=None):
     ap.add_argument("--terms-corpus", type=Path, default=SHARED / "arabic-commands")
     ap.add_argument("--work", type=Path, default=None, help="default runs/bench_frequent_CORPUS (_small with --small)")
     ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--cut", action="store_true", help="with the Mboshi corpus: cut its held-out word tokens and place "
+                    "them in Swahili read speech, as many types per group as allow it")
     a = ap.parse_args(argv)
     if not (SHARED / "mboshi" / "words.tsv").exists() or not (a.terms_corpus / "words.tsv").exists():
         sys.exit(f"needs ../shared/corpora (mboshi and {a.terms_corpus.name}) beside the checkout")
-    work = a.work or ROOT / "runs" / f"bench_frequent_{a.terms_corpus.name}{'_small' if a.small else ''}"
+    work = a.work or ROOT / "runs" / f"bench_frequent_{a.terms_corpus.name}{'_cut' if a.cut else ''}{'_small' if a.small else ''}"
     t0 = time.time()
     if work.exists():
         shutil.rmtree(work)
-    m = build(work / "broadcasts", a.terms_corpus, a.small, a.seed)
+    m = build(work / "broadcasts", a.terms_corpus, a.small, a.seed, a.cut)
     reference = read_reference(work / "broadcasts" / "reference.tsv")
     index_archive(work / "broadcasts" / "clean", work / "index")
     s = Searcher(work / "index")
