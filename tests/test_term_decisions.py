@@ -136,3 +136,21 @@ def test_a_bad_line_in_a_batch_is_reported_and_the_rest_searched(index, tmp_path
     assert code == 1  # as `trawl index` does when a file failed: the rest is done, the exit says not all
     assert f"{terms} line 3" in err and "no letters" in err
     assert {d["term"] for d in json.loads(out)} == {"mósωngώsώ", "pórá"}
+
+
+def test_each_term_shows_its_expected_count_and_twv_threshold(index):
+    """With every candidate listed (--top above the pool), the expected count is the sum of the listed
+    confidences, and the TWV threshold is Miller et al.'s formula (see above) of that count, with T the
+    indexed seconds and beta 999.9; without a calibration no threshold is applied, and the output says so."""
+    from detector.index_store import Index
+
+    code, out, err = run("search", "mósωngώsώ", "--index", index, "--top", "5000", "--json")
+    assert code == 0, err
+    data = json.loads(out)
+    n = data[0]["expected_count"]
+    assert n == pytest.approx(sum(d["confidence"] for d in data), abs=1e-3 + 1e-4 * len(data))
+    seconds = Index.open(index).total_seconds()
+    assert data[0]["twv_threshold"] == pytest.approx(999.9 * n / (seconds + 998.9 * n), abs=1e-4)
+    assert {d["threshold_applied"] for d in data} == {"none: uncalibrated confidence"}
+    code, out, err = run("search", "mósωngώsώ", "--index", index, "--top", "2")
+    assert "none applied: the confidence is uncalibrated" in out and "TWV threshold" in out
