@@ -153,7 +153,12 @@ def index_cmd(
 
 # ----------------------------------------------------------------- search
 def _read_terms(terms: List[str], terms_file: Optional[Path]) -> List[str]:
-    allterms = list(terms or [])
+    return [t for t, _ in _numbered_terms(terms, terms_file)]
+
+
+def _numbered_terms(terms: List[str], terms_file: Optional[Path]) -> list[tuple[str, str]]:
+    """(term, where it came from): 'term N' for arguments, 'FILE line N' for the terms file."""
+    allterms = [(t, f"term {i}") for i, t in enumerate(terms or [], 1)]
     if terms_file:
         try:
             text = terms_file.read_text(encoding="utf-8-sig")
@@ -165,10 +170,23 @@ def _read_terms(terms: List[str], terms_file: Optional[Path]) -> List[str]:
             raise TrawlError(f"terms file {terms_file} cannot be read ({e.strerror})") from None
         except UnicodeDecodeError:
             raise TrawlError(f"terms file {terms_file} is not UTF-8 text") from None
-        allterms += [ln.strip() for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
+        allterms += [(ln.strip(), f"{terms_file} line {i}") for i, ln in enumerate(text.splitlines(), 1)
+                     if ln.strip() and not ln.lstrip().startswith("#")]
     if not allterms:
         raise TrawlError("give at least one term to search for (as arguments or with --terms FILE)")
     return allterms
+
+
+def _speech_example(wav: Path):
+    """The samples of an example recording, or a TrawlError when it holds no speech."""
+    from . import audio
+    from .features import log_mel
+    from .gating import speech_mask
+
+    x = audio.load(wav)
+    if not speech_mask(log_mel(x)).any():
+        raise TrawlError(f"the example {wav} holds no speech (silence, noise or music only): record the word itself")
+    return x
 
 
 def _parse_span(text: str, what: str) -> tuple[str, float, float]:
@@ -187,12 +205,12 @@ def hits_table(hits, calibrated: bool, title: str) -> Table:
     from .export import format_hms
 
     t = Table(title=title)
-    for col in ["term", "rank", "broadcast", "start", "end", "score", "confidence"] + (["accepted"] if calibrated else []):
+    for col in ["term", "searched", "rank", "broadcast", "start", "end", "score", "confidence"] + (["accepted"] if calibrated else []):
         t.add_column(col, justify="right" if col in ("rank", "score", "confidence") else "left",
                      overflow="fold", no_wrap=col in ("start", "end", "rank", "score"),
                      min_width=12 if col in ("start", "end") else None)
     for h in hits:
-        row = [h.term, str(h.rank), h.broadcast, format_hms(h.start), format_hms(h.end), f"{h.score:.2f}", f"{h.confidence:.2f}"]
+        row = [h.term, h.extra.get("searched", ""), str(h.rank), h.broadcast, format_hms(h.start), format_hms(h.end), f"{h.score:.2f}", f"{h.confidence:.2f}"]
         if calibrated:
             row.append("yes" if h.accepted else "no")
         t.add_row(*row)
@@ -237,7 +255,7 @@ def search_cmd(
     if top < 1:
         raise TrawlError("--top must be at least 1")
     by_example = bool(like or example) and not (terms or terms_file)  # examples alone, no spelling
-    all_terms = ["(example)"] if by_example else _read_terms(terms, terms_file)
+    all_terms = [("(example)", "")] if by_example else _numbered_terms(terms, terms_file)
     rs = load_rules(rules) if rules else None
     s = Searcher(index, models, rules=rs, adapt=not no_adapt)
     for w in s.warnings:
@@ -246,19 +264,25 @@ def search_cmd(
     for item in like or []:
         ex_vecs.append(s.window_vector(*_parse_span(item, "--like")))
     for wav in example or []:
-        from . import api, audio
+        from . import api
 
-        x = audio.load(wav)
+        x = _speech_example(wav)
         ex_vecs.append(api.embed_spans(x, 16000, [(0.0, len(x) / 16000)], models)[0])
     calibrated = s.calibration is not None
-    hits, below = [], 0
-    for t in all_terms:
+    hits, below, bad, summary = [], 0, [], []
+    for t, where in all_terms:
         if by_example:
             term, v = t, np.mean([e / np.linalg.norm(e) for e in ex_vecs], axis=0)
         else:
-            term, v = s.query(strip_marks(t) if ignore_marks else t, ex_vecs)
+            try:
+                term, v = s.query(strip_marks(t) if ignore_marks else t, ex_vecs)
+            except TrawlError as e:  # a bad term is reported with where it came from; the others are searched
+                bad.append(f"{where}: {e}")
+                continue
         found = s.search_vector(term, v, top=None if calibrated and not show_all else top,
                                 letters=0 if by_example else None)
+        if found:
+            summary.append(_decision(found[0], s))
         if calibrated and not show_all:
             kept = [h for h in found if h.accepted]
             below += len(found) - len(kept)
@@ -266,6 +290,16 @@ def search_cmd(
         if not no_refine and found:
             refine_hits(found, v / np.linalg.norm(v), Path(archive or s.index.manifest.get("archive", "")), s.models)
         hits += found
+    if bad and len(bad) == len(all_terms):
+        if len(bad) == 1:
+            raise TrawlError(bad[0])
+        for b in bad:
+            err.print(f"[bold red]error:[/] {b}", highlight=False, soft_wrap=True)
+        raise typer.Exit(1)
+    applied = (f"{s.calibration.threshold:.4f}: calibrated, for precision {s.calibration.target_precision:.2f}"
+               if calibrated else "none: uncalibrated confidence")
+    for h in hits:
+        h.extra["threshold_applied"] = applied
     if csv_path:
         write_csv(hits, csv_path, calibrated=calibrated)
     if clips:
@@ -274,15 +308,51 @@ def search_cmd(
         write_clips(hits, clips, archive or s.index.manifest.get("archive"))
     if as_json:
         sys.stdout.write(hits_to_json(hits, calibrated=calibrated) + "\n")
-        return
+        return _report_bad(bad)
     title = "Hits (confidence calibrated)" if calibrated else "Hits (confidence uncalibrated: run trawl calibrate)"
     out.print(hits_table(hits, calibrated, title))
     if calibrated and not show_all:
         out.print(f"{below} more candidate hits fell below the calibrated threshold "
                   f"({s.calibration.threshold:.2f}); --all lists them.")
+    if summary:
+        out.print(decision_table(summary))
     if csv_path:
         out.print(f"wrote {len(hits)} hits to {csv_path}")
     out.print("[dim]Hits are candidates: listen to each before anyone is quoted or a record is changed.[/]")
+    _report_bad(bad)
+
+
+def _report_bad(bad: list[str]) -> None:
+    """Each term that could not be searched, one line each on stderr; exit 1 after the others' output."""
+    for b in bad:
+        err.print(f"[bold red]error:[/] {b}", highlight=False, soft_wrap=True)
+    if bad:
+        raise typer.Exit(1)
+
+
+def _decision(hit, s) -> dict:
+    """A term's decision record: what was searched, its expected count, and which threshold applies, and why."""
+    x = hit.extra
+    if s.calibration is not None:
+        why = (f"calibrated threshold for precision {s.calibration.target_precision:.2f} "
+               f"(the TWV threshold is reported, not applied)")
+        applied = s.calibration.threshold
+    else:
+        why = "none applied: the confidence is uncalibrated (run trawl calibrate); TWV threshold reported"
+        applied = None
+    return {"term": hit.term, "searched": x.get("searched", ""), "expected": x.get("expected_count"),
+            "twv": x.get("twv_threshold"), "applied": applied, "why": why}
+
+
+def decision_table(rows: list[dict]) -> Table:
+    t = Table(title="Thresholds per term (TWV threshold: keyword-specific thresholding from the expected count)")
+    for c in ("term", "searched", "expected occurrences", "TWV threshold", "applied threshold", "why"):
+        t.add_column(c, justify="right" if c in ("expected occurrences", "TWV threshold", "applied threshold") else "left")
+    for r in rows:
+        t.add_row(r["term"], r["searched"], "-" if r["expected"] is None else f"{r['expected']:.2f}",
+                  "-" if r["twv"] is None else f"{r['twv']:.3f}",
+                  "-" if r["applied"] is None else f"{r['applied']:.3f}", r["why"])
+    return t
 
 
 def _write_sample(hits, out_file: Optional[Path]) -> None:
@@ -551,7 +621,7 @@ def evaluation_table(res: dict, where: str = "at the applied threshold") -> Tabl
     for term, r in res["per_term"].items():
         t.add_row(term, str(r["occurrences"]), f"{r['twv']:.3f}" if r["twv"] is not None else "-", f"{r['p_at_10']:.2f}", f"{r['recall_at_100']:.2f}")
     t.add_row("[bold]all terms[/]", str(res["occurrences"]), f"{res['atwv']:.3f}", f"{res['p_at_10']:.2f}", f"{res['recall_at_100']:.2f}")
-    t.caption = f"MTWV {res['mtwv']:.3f} (at score {res['mtwv_threshold']:.2f}); ATWV {where} {res['atwv']:.3f}"
+    t.caption = f"MTWV {res['mtwv']:.3f} (at {res.get('ranked_by', 'score')} {res['mtwv_threshold']:.2f}); ATWV {where} {res['atwv']:.3f}"
     return t
 
 

@@ -18,7 +18,7 @@ def run_demo(index: Path | None, csv_path: Path, out, err, demo_dir: Path = DEMO
     from .evaluation import read_reference
     from .export import write_csv
     from .indexing import index_archive
-    from .search import Searcher
+    from .search import Searcher, twv_margin
     from .spelling import check_term
 
     if not (demo_dir / "terms.txt").exists():
@@ -48,9 +48,11 @@ def run_demo(index: Path | None, csv_path: Path, out, err, demo_dir: Path = DEMO
         out.print("[bold]3. Scoring[/] against the demo's ground truth (demo_broadcasts/ground_truth.tsv)")
         ref = read_reference(demo_dir / "ground_truth.tsv")
         words = [check_term(t) for t in terms]
-        res = evaluate_hits(hits, ref, words, s.total_seconds, s.uncalibrated_centre)
+        # ranked by each hit's margin over its term's TWV threshold (keyword-specific thresholding)
+        res = evaluate_hits(hits, ref, words, s.total_seconds, 0.0, key=twv_margin)
         # per-term values at the MTWV threshold: the demo has no calibration to choose a threshold with
-        at_best = evaluate_hits(hits, ref, words, s.total_seconds, res["mtwv_threshold"])
+        at_best = evaluate_hits(hits, ref, words, s.total_seconds, res["mtwv_threshold"], key=twv_margin)
+        at_best["ranked_by"] = "margin over the term's TWV threshold (log-odds)"
         out.print(evaluation_table(at_best, "at the MTWV threshold"))
         out.print(f"[bold]MTWV {res['mtwv']:.3f}[/], P@10 {res['p_at_10']:.3f}, recall in the top 100 "
                   f"{res['recall_at_100']:.3f}; finished in {time.time() - t0:.0f} s")

@@ -58,6 +58,9 @@ def evaluate(index_dir: Path, reference_path: Path, terms: list[str], models_dir
     if s.calibration is not None:
         res = evaluate_hits(hits, reference, terms, total, s.calibration.threshold, key="confidence")
     else:
-        res = evaluate_hits(hits, reference, terms, total, s.uncalibrated_centre, key="score")
+        from .search import twv_margin  # uncalibrated: each term's TWV threshold (keyword-specific thresholding)
+
+        res = evaluate_hits(hits, reference, terms, total, 0.0, key=twv_margin)
+        res["ranked_by"] = "margin over the term's TWV threshold (log-odds)"
     res["broadcasts"] = len(searched)
     return res

@@ -9,12 +9,22 @@ When the models have a letter head, a second look re-ranks the candidates: each 
 stretch of audio (its window, LETTER_MARGIN either side) is aligned with the term's letters
 over the stored letter posteriors (detector/letters.py); each candidate's evidence is the
 embedding z-score plus `weight` times the alignment cost per letter, and the hit takes the
-aligned times. The score is then normalised per term by sum-to-one in the log domain
-(score = evidence - tau * log sum over the term's candidate pool of exp(evidence / tau);
-Mamou et al., Interspeech 2013, score normalisation for spoken term detection): a hit scores
-high when it stands out from every other stretch that resembles the term. The weight and tau
-are fitted on the dev split's broadcasts (exporters/fit_rescoring.py) and recorded in the
-model card, with the uncalibrated confidence's centre.
+aligned times. The weight is fitted on the dev split's broadcasts (exporters/fit_rescoring.py).
+
+Each hit's evidence is then judged against the term's own background: the same evidence
+(embedding z-score plus letter alignment) of the term over a fixed random sample of the
+archive's stretches (BACKGROUND_STRETCHES of the windows), nearly all of which are not the
+term. A hit's features (posterior_features) are its evidence above the background's 99th
+percentile and above its median, its evidence below the term's best candidate, and the log of
+the term's letter count; a logistic map fitted on the dev broadcasts, with never-spoken terms
+among them (exporters/fit_background.py; card key "background"), turns them into the hit's
+posterior, and `score` is its log-odds. No feature grows or shrinks with the number of the
+term's occurrences: a word spoken 20 times, each as clearly as another word spoken once, gets
+the same posterior for each (per-term sum-to-one, Mamou et al., Interspeech 2013, shares one
+mass among all of them, which `scoring = "sum-to-one"` still gives for comparison). The term's
+expected count is the sum of its candidate pool's posteriors, and the term-specific threshold of
+keyword-specific thresholding (Miller et al., Interspeech 2007; calibration.twv_threshold)
+is computed from it: `twv_margin` is a hit's log-odds above it.
 """
 
 from __future__ import annotations
@@ -30,7 +40,8 @@ from .hits import Hit
 from .index_store import Index
 from .letters import dequantise, keyword_scores, letter_ids, per_letter
 from .models import load
-from .spelling import check_term, letter_count
+from .calibration import twv_threshold
+from .spelling import letter_count, readable_term, word_type
 from .windows import window_times
 
 BACKGROUND_SAMPLE = 4000
@@ -41,6 +52,10 @@ LETTER_MARGIN = 0.25  # seconds of audio either side of a candidate window searc
 DEFAULT_LETTER_WEIGHT, DEFAULT_TAU = 1.0, 1.0  # used when the model card records no fitted values
 POOL_REGIONS = 200  # candidate stretches per term given the letter pass (the normalisation pool)
 POOL_WINDOWS = 1600  # nearest windows fetched, at least, to fill that pool after NMS
+BACKGROUND_STRETCHES = 1000  # random archive windows that form each term's background evidence
+BACKGROUND_QUANTILE = 0.99  # the background's level a hit is compared with
+# the posterior map over posterior_features when the card records none (the fit of the current models)
+DEFAULT_BACKGROUND_MAP = ((0.218, 0.7359, 0.5942, 1.2547), -11.1312)
 UNCALIBRATED_CENTRE, UNCALIBRATED_SCALE = 7.0, 1.0  # centre: between the MTWV thresholds of the held-out benchmark (6.4 radio, 7.3 clean)
 
 
@@ -48,6 +63,28 @@ def uncalibrated_confidence(score: np.ndarray, centre: float = UNCALIBRATED_CENT
                              scale: float = UNCALIBRATED_SCALE) -> np.ndarray:
     """A monotone map of score to [0, 1]. Not calibrated: it is no probability until `trawl calibrate`."""
     return 1.0 / (1.0 + np.exp(-(np.asarray(score, np.float64) - centre) / scale))
+
+
+def posterior_features(evidence, high: float, median: float, best: float, n_letters: float) -> np.ndarray:
+    """(n, 4): evidence above the background's high quantile, below the term's best candidate,
+    above the background's median, and log(letters): the inputs of the posterior map (see the module text)."""
+    e = np.asarray(evidence, np.float64).reshape(-1)
+    return np.column_stack([e - high, e - best, e - median, np.full(len(e), np.log(max(n_letters, 1.0)))])
+
+
+def pool_log_odds(evidence, high: float, median: float, n_letters: int, weights, intercept: float):
+    """Log-odds of each candidate of a term's pool (best first or not) and the background tuple used:
+    the posterior map over posterior_features, the best candidate taken from the first POOL_REGIONS."""
+    e = np.asarray(evidence, np.float64)
+    bg = (float(high), float(median), float(e[:POOL_REGIONS].max()), float(n_letters))
+    return posterior_features(e, *bg) @ np.asarray(weights, np.float64) + float(intercept), bg
+
+
+def twv_margin(hit) -> float:
+    """A hit's log-odds above its term's TWV threshold (>= 0: keyword-specific thresholding accepts it)."""
+    p = min(max(float(hit.confidence), 1e-12), 1 - 1e-12)
+    t = min(max(float(hit.extra.get("twv_threshold", 0.5)), 1e-12), 1 - 1e-12)
+    return float(np.log(p / (1 - p)) - np.log(t / (1 - t)))
 
 
 def nms(starts: np.ndarray, ends: np.ndarray, groups: np.ndarray, scores: np.ndarray) -> np.ndarray:
@@ -72,7 +109,8 @@ def nms(starts: np.ndarray, ends: np.ndarray, groups: np.ndarray, scores: np.nda
 @dataclass
 class Ranked:
     """A query's candidate stretches: broadcast index, times, score, cosine, letter-aligned or not;
-    `order` ranks them (after NMS); `norm` is the per-term normaliser subtracted from the evidence."""
+    `order` ranks them (after NMS); `background` the (median, scale) of the term's background evidence;
+    `evidence` what the posterior map reads."""
     bi: np.ndarray
     starts: np.ndarray
     ends: np.ndarray
@@ -80,7 +118,8 @@ class Ranked:
     raw: np.ndarray
     aligned: np.ndarray
     order: np.ndarray
-    norm: float
+    background: tuple
+    evidence: np.ndarray | None = None  # before the posterior map (None without the letter pass)
 
 
 class Searcher:
@@ -130,9 +169,16 @@ class Searcher:
         r = self.models.rescoring
         self.letter_weight = float(r.get("weight", DEFAULT_LETTER_WEIGHT))
         self.tau = float(r.get("tau", DEFAULT_TAU))
-        # score at which the uncalibrated confidence is 0.5: the dev MTWV threshold (or, without letters, the embedding's)
+        # "background" (the default: count-independent posteriors) or "sum-to-one" (earlier releases, for comparison)
+        self.scoring = "background"
+        # sum-to-one's confidence: 0.5 at the dev MTWV threshold; search by example: the embedding's
         self.uncalibrated_centre = float(r.get("centre", 0.0)) if self.letter_pass else UNCALIBRATED_CENTRE
         self.uncalibrated_scale = float(r.get("scale", 1.0)) if self.letter_pass else UNCALIBRATED_SCALE
+        bgmap = self.models.card.get("background", {}) if self.letter_pass else {}
+        self.background_map = (np.asarray(bgmap.get("weights", DEFAULT_BACKGROUND_MAP[0]), np.float64),
+                               float(bgmap.get("intercept", DEFAULT_BACKGROUND_MAP[1])))
+        self.stretch_labels = np.sort(np.random.default_rng(1).permutation(self.background_labels)[:BACKGROUND_STRETCHES])
+        self._background: dict = {}  # (term, use_map) -> (median, scale) of its background evidence
         self._pooled: dict = {}  # (term, use_map) -> Ranked, for re-scoring checked rows
 
     def _open_snapshot(self) -> None:
@@ -163,8 +209,9 @@ class Searcher:
 
         key = (term, use_map)
         if key not in self._spelled:  # checked samples and batches repeat terms: embed each once
-            t = check_term(term)
-            spelled = self.rules.apply(t) if self.rules else t
+            t = word_type(term)
+            spelled = readable_term(term, set(self.models.symbols))  # other scripts: written in Latin letters
+            spelled = self.rules.apply(spelled) if self.rules else spelled
             if self.learned_rules is not None:
                 spelled = self.learned_rules.apply_or_keep(spelled)
             v = embed_spellings([spelled])[0]
@@ -234,14 +281,18 @@ class Searcher:
     def search_vector(self, term: str, vector: np.ndarray, top: int | None = 10, letters: int | None = None,
                       candidates: int | None = None) -> list[Hit]:
         """Hits for a query vector, best first. With `letters=0` (search by example) the letter pass is skipped."""
-        n_letters = letter_count(term) if letters is None else letters
+        searched = self.spelling_vector(term, use_map=False)[1] if letters is None else ""
+        n_letters = letter_count(searched) if letters is None else letters
         r = self.rank(term, vector, top, n_letters, candidates)
+        conf, accepted = self.confidence(r.score[r.order], r.raw[r.order], n_letters)
+        expected = float(conf.sum())  # the pool's posteriors (calibrated ones, once a calibration exists)
+        decision = {"searched": searched, "expected_count": round(expected, 3),
+                    "twv_threshold": round(twv_threshold(expected, self.total_seconds), 4)}
         order = r.order[:top] if top else r.order
-        conf, accepted = self.confidence(r.score[order], r.raw[order], n_letters)
         return [Hit(term=term, broadcast=self.names[r.bi[i]], start=round(float(r.starts[i]), 3),
                     end=round(float(r.ends[i]), 3), score=float(r.score[i]), confidence=float(conf[k]), rank=k + 1,
                     accepted=None if accepted is None else bool(accepted[k]), raw=float(r.raw[i]), letters=n_letters,
-                    aligned=bool(r.aligned[i]))
+                    aligned=bool(r.aligned[i]), extra=dict(decision))
                 for k, i in enumerate(order)]
 
     def rank(self, term: str, vector: np.ndarray, top: int | None, n_letters: int, candidates: int | None = None) -> Ranked:
@@ -261,15 +312,39 @@ class Searcher:
         starts, ends = window_times(self.flat_starts[pos], self.flat_kinds[pos], self.index.windows)
         order = nms(starts, ends, bi, score)
         if not ids:
-            return Ranked(bi, starts, ends, score, raw, np.zeros(len(score), bool), order, 0.0)
+            return Ranked(bi, starts, ends, score, raw, np.zeros(len(score), bool), order, (0.0, 1.0))
         pool = order[: max(POOL_REGIONS, 2 * (top or 100))]
         cost, a_start, a_end = self.align(ids, bi[pool], starts[pool], ends[pool])
         aligned = cost > -np.inf
         starts, ends = np.where(aligned, a_start, starts[pool]), np.where(aligned, a_end, ends[pool])
         evidence = self.combine(score[pool], cost, len(ids))
-        norm = self.normaliser(evidence[:POOL_REGIONS])
-        score = evidence - norm
-        return Ranked(bi[pool], starts, ends, score, raw[pool], aligned, nms(starts, ends, bi[pool], score), norm)
+        if self.scoring == "sum-to-one":
+            bg = (self.normaliser(evidence[:POOL_REGIONS]), 1.0)
+            score = evidence - bg[0]
+        else:
+            high, median = self.term_background(term, v, ids)
+            score, bg = pool_log_odds(evidence, high, median, len(ids), *self.background_map)
+        return Ranked(bi[pool], starts, ends, score, raw[pool], aligned, nms(starts, ends, bi[pool], score), bg, evidence)
+
+    def term_background(self, term: str, v: np.ndarray, ids: list[int]) -> tuple[float, float]:
+        """(99th percentile, median) of the term's evidence over the fixed sample of archive stretches."""
+        key = (term, v.tobytes())
+        if key not in self._background:
+            labels = self.stretch_labels
+            bi, wi = self.locate(labels)
+            ok = bi >= 0
+            bi, wi = bi[ok], wi[ok]
+            pos = self.offsets[bi] + wi
+            starts, ends = window_times(self.flat_starts[pos], self.flat_kinds[pos], self.index.windows)
+            z = self.score(self.index.vectors(labels[ok]) @ v, v)
+            ev = self.combine(z, self.align(ids, bi, starts, ends, with_times=False)[0], len(ids))
+            self._background[key] = (float(np.quantile(ev, BACKGROUND_QUANTILE)), float(np.median(ev)))
+        return self._background[key]
+
+    def log_odds(self, evidence: np.ndarray, background: tuple) -> np.ndarray:
+        """A hit's log-odds of being right: the dev-fitted logistic map of its posterior_features."""
+        weights, intercept = self.background_map
+        return posterior_features(evidence, *background) @ weights + intercept
 
     # ------------------------------------------------------------ letter pass
     def letter_targets(self, term: str) -> list[int]:
@@ -279,8 +354,9 @@ class Searcher:
     def broadcast_letters(self, b: int):
         return self._letters.get(b)
 
-    def align(self, ids: list[int], bi: np.ndarray, starts: np.ndarray, ends: np.ndarray):
-        """Alignment cost (<= 0, -inf where none fits) and aligned times of each candidate stretch."""
+    def align(self, ids: list[int], bi: np.ndarray, starts: np.ndarray, ends: np.ndarray, with_times: bool = True):
+        """Alignment cost (<= 0, -inf where none fits) and aligned times of each candidate stretch
+        (with `with_times=False` only the cost is found, faster; the times stay the stretches')."""
         fs = float(self.index.manifest["frame_seconds"])
         regions, offsets, where = [], [], []
         for i, (b, s0, e0) in enumerate(zip(bi, starts, ends)):
@@ -296,13 +372,14 @@ class Searcher:
         cost = np.full(len(bi), -np.inf)
         a_start, a_end = np.asarray(starts, np.float64).copy(), np.asarray(ends, np.float64).copy()
         if regions:
-            c, first, last = keyword_scores(regions, ids)
+            c, first, last = keyword_scores(regions, ids, with_times)
             w = np.array(where)
-            good = first >= 0
+            good = first >= 0 if with_times else c > -np.inf
             off = np.array(offsets)
             cost[w[good]] = c[good]
-            a_start[w[good]] = (off[good] + first[good]) * fs
-            a_end[w[good]] = (off[good] + last[good] + 1) * fs
+            if with_times:
+                a_start[w[good]] = (off[good] + first[good]) * fs
+                a_end[w[good]] = (off[good] + last[good] + 1) * fs
         return cost, a_start, a_end
 
     def combine(self, z: np.ndarray, cost: np.ndarray, n_letters: int) -> np.ndarray:
@@ -319,7 +396,10 @@ class Searcher:
 
     def confidence(self, score, raw, letters):
         if self.calibration is None:
-            return uncalibrated_confidence(score, self.uncalibrated_centre, self.uncalibrated_scale), None
+            if letters and self.letter_pass and self.scoring == "background":  # score is a log-odds
+                return uncalibrated_confidence(score, 0.0, 1.0), None
+            centre = self.uncalibrated_centre if letters and self.letter_pass else UNCALIBRATED_CENTRE
+            return uncalibrated_confidence(score, centre, self.uncalibrated_scale if letters else UNCALIBRATED_SCALE), None
         from .calibration import hit_features
 
         X = hit_features(np.asarray(score), np.asarray(raw), np.full(len(score), letters))
@@ -376,7 +456,8 @@ class Searcher:
         z = float(self.score(np.float64(raw), v))
         if ids:
             cost = self.align(ids, np.array([self.names.index(broadcast)]), np.array([start]), np.array([end]))[0]
-            z = float(self.combine(np.array([z]), cost, len(ids))[0]) - r.norm
+            ev = self.combine(np.array([z]), cost, len(ids))
+            z = float(ev[0] - r.background[0] if self.scoring == "sum-to-one" else self.log_odds(ev, r.background)[0])
         return z, raw
 
     def score(self, raw: np.ndarray, v: np.ndarray) -> np.ndarray:

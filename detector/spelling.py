@@ -60,3 +60,34 @@ def check_term(text: str) -> str:
     if not letters(text):
         raise TrawlError(f"the term {text!r} has no letters to search for")
     return word_type(text)
+
+
+def transliterate(text: str, readable: set[str]) -> str:
+    """The spelling with every letter the model cannot read written in Latin letters.
+
+    A character is kept when its base letter (after NFD) is one of `readable` (the model's
+    symbols) or when it is no letter at all; any other letter (Cyrillic, Hebrew, Han, Ethiopic,
+    Arabic, ...), with its marks, is replaced by its transliteration from the `anyascii`
+    library, lower-cased. Combining marks the model does not read are dropped. Returns NFC.
+    """
+    from anyascii import anyascii
+
+    out: list[str] = []
+    for ch in unicodedata.normalize("NFC", text):
+        nfd = unicodedata.normalize("NFD", ch)
+        base = nfd[0]
+        if unicodedata.combining(base):
+            out.append(ch if base in readable else "")
+        elif not base.isalpha() or base.lower() in readable:
+            out.append(ch)
+        else:
+            out.append(anyascii(ch).lower())
+    return unicodedata.normalize("NFC", "".join(out))
+
+
+def readable_term(text: str, readable: set[str]) -> str:
+    """The term as the model will read it (transliterated), or a TrawlError when no letter is left."""
+    spelled = transliterate(check_term(text), readable)
+    if not any(c in readable for c in letters(spelled)):
+        raise TrawlError(f"the term {text!r} has no letters the model can read, even written in Latin letters")
+    return spelled

@@ -147,9 +147,15 @@ def letter_lines(card: dict) -> list[str]:
         f"(untrained: {t.get('dev_letter_error_untrained', float('nan')):.2f}).",
         "- Indexing stores each broadcast's posteriors, one byte per class per 20 ms frame (0.1 nat steps). Search aligns "
         "a term's letters over each candidate's stretch (window ± 0.25 s) with a free start and end and ranks by "
-        "embedding z-score + weight × alignment cost per letter (floored at −8), normalised per term by sum-to-one in the "
-        "log domain over the term's 200 best candidates (temperature tau; Mamou et al., Interspeech 2013).",
+        "embedding z-score + weight × alignment cost per letter (floored at −8), judged against the term's own background "
+        "(detector/search.py; earlier releases normalised it per term by sum-to-one over the term's 200 best candidates, "
+        "temperature tau, Mamou et al., Interspeech 2013).",
     ]
+    bg = card.get("background")
+    if bg:
+        lines.append(f"- Posterior map over ({', '.join(bg.get('features', []))}): weights {bg['weights']}, intercept "
+                     f"{bg['intercept']:g}, fitted by `{bg.get('command', '')}` on {bg.get('fitted_on', '')}; dev MTWV "
+                     + ", ".join(f"{c}: " + ", ".join(f"{k} {v:.3f}" for k, v in m.items()) for c, m in bg.get("dev_mtwv", {}).items()) + ".")
     if r:
         lines.append(f"- Weight {r['weight']:g}, tau {r.get('tau', 1):g}, uncalibrated-confidence centre {r.get('centre', 0):g}, "
                      f"fitted by `{r.get('command', '')}` on {r.get('fitted_on', '')}; mean dev MTWV by (weight, tau): " + ", ".join(f"{w}: {(v['clean']['mtwv'] + v['radio']['mtwv']) / 2:.3f}" for w, v in r.get("grid", {}).items()) + ".")

@@ -7,7 +7,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 CORPORA = ROOT.parent / "shared" / "corpora"
 CORPUS = CORPORA / "mboshi"
-RUNTIME = ("onnxruntime", "numpy", "librosa", "soundfile", "hnswlib", "typer", "rich")  # pyproject's dependencies
+RUNTIME = ("onnxruntime", "numpy", "librosa", "soundfile", "hnswlib", "typer", "rich", "starlette", "uvicorn", "anyascii")  # pyproject's dependencies
 
 
 def pytest_sessionstart(session):

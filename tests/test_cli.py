@@ -11,6 +11,8 @@ from detector.cli import app
 
 runner = CliRunner()
 COLUMNS = ["term", "broadcast", "start", "end", "start_hms", "end_hms", "score", "confidence", "rank", "verdict"]
+# after the contract's columns (../shared/CONTRACTS.md: "then any extra columns of yours"), sorted, as the README lists them
+EXTRA = ["expected_count", "searched", "threshold_applied", "twv_threshold"]
 
 
 def run(*args):
@@ -55,12 +57,12 @@ def test_csv_and_json_carry_the_documented_fields(index, tmp_path):
     assert code == 0, text
     with open(out, newline="", encoding="utf-8") as f:  # read back with the stdlib csv module
         rows = list(csv.reader(f))
-    assert rows[0] == COLUMNS
+    assert rows[0] == COLUMNS + EXTRA
     assert len(rows) == 7 and [r[8] for r in rows[1:4]] == ["1", "2", "3"]
     assert {r[0] for r in rows[1:]} == {"mósωngώsώ", "'=danger"}  # OWASP formula guard on text cells
     code, text = run("search", "mósωngώsώ", "--index", index, "--top", "2", "--json")
     data = json.loads(text)
-    assert [list(d.keys()) for d in data] == [COLUMNS, COLUMNS]
+    assert [list(d.keys()) for d in data] == [COLUMNS + EXTRA, COLUMNS + EXTRA]
     assert data[0]["start"] == float(rows[1][2])
 
 

@@ -58,7 +58,10 @@ def test_suggest_writes_with_csv_and_with_its_old_name_out(check_archive, tmp_pa
         assert "trawl check" in text
     assert (tmp_path / "s--csv.csv").read_bytes() == (tmp_path / "s--out.csv").read_bytes()
     header = (tmp_path / "s--csv.csv").read_text(encoding="utf-8").splitlines()[0]
-    assert header.endswith(",verdict")
+    # ../shared/CONTRACTS.md, "Hit lists": the fixed columns in order, then verdict, then extra columns
+    cols = header.split(",")
+    assert cols[:9] == ["term", "broadcast", "start", "end", "start_hms", "end_hms", "score", "confidence", "rank"]
+    assert "verdict" in cols and cols.index("verdict") in (9, 10)
 
 
 def test_rules_try_shows_both_stages_and_unknown_signs(check_archive, tmp_path):
