@@ -20,7 +20,7 @@ from .models import load
 from .pooling import FRAME_SECONDS, pool, prefix_sums, to_frames
 from .spelling import letters, symbols
 
-CONTEXT_SECONDS = 1.5  # audio used on either side of a span (the contract allows up to 2 s; the frame encoder sees ±1.38 s)
+CONTEXT_SECONDS = 1.0  # audio used on either side of a span (the contract allows up to 2 s)
 
 
 def embed_spellings(words: list[str], models_dir: str | None = None) -> np.ndarray:

@@ -24,7 +24,7 @@ FEATURE_PARAMS = {
     "log_floor": 1e-6,
     "log": "natural",
     "center": "zero-padded by win_length/2 at both ends of the signal",
-    "normalisation": "per-band sliding mean over ±0.75 s removed, then fixed per-band mean/std from training data; inside the frame encoder and the letter head",
+    "normalisation": "fixed per-band mean/std from training data, applied inside the frame encoder",
 }
 
 SAMPLE_RATE = FEATURE_PARAMS["sample_rate"]
