@@ -77,6 +77,8 @@ def index_cmd(
     models: Optional[str] = ModelsOpt,
     as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON (for programs) instead of a table."),
     wait: bool = WaitOpt,
+    reindex: bool = typer.Option(False, "--reindex", help="The index was made with another model: index the archive "
+                                 "again with the installed one, keeping the spelling rules and learned rules."),
 ):
     """Index a folder of broadcasts so its words can be searched.
 
@@ -96,8 +98,15 @@ def index_cmd(
         raise TrawlError(f"no audio files (WAV, FLAC, MP3, Ogg/Opus) under {archive}")
     if index.exists() and not index.is_dir():
         raise TrawlError(f"{index} is a file, not an index folder: choose an empty or new folder")
+    previous = index.with_name(index.name + ".previous-model")  # an index being replaced (kept until the new one is done)
     if (index / "trawl-index.json").exists():
-        Index.check_manifest(Index.read_manifest(index), index, load(models))
+        manifest = Index.read_manifest(index)
+        if reindex and manifest["model_card_sha256"] != load(models).card_hash:
+            if previous.exists():
+                raise TrawlError(f"{previous} is in the way: an earlier re-index left it; move it away first")
+            os.replace(index, previous)
+        else:
+            Index.check_manifest(manifest, index, load(models))
     state = {"audio": 0.0}
     with Progress(TextColumn("[bold]{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total} files"),
                   TextColumn("{task.fields[hours]:.2f} h audio"), TextColumn("{task.fields[speed]}"),
@@ -118,6 +127,12 @@ def index_cmd(
                     prog.console.print(f"[yellow]skipped[/] {info.get('error', info['path'])}", highlight=False, soft_wrap=True)
 
         rep = index_archive(archive, index, models, progress=progress, wait=wait)
+    if previous.exists() and (index / "trawl-index.json").exists():
+        from .indexing import carry_settings
+
+        carried = carry_settings(previous, index)
+        err.print(f"re-indexed with the installed model; carried over: {', '.join(carried) or 'nothing'}; "
+                  "calibrate again (the old calibration described the old model's scores)", highlight=False)
     if as_json:
         _print_json({"indexed": rep.indexed, "unchanged": rep.unchanged,
                      "failed": [{"path": p, "error": e} for p, e in rep.failed],

@@ -313,9 +313,11 @@ class Index:
     @staticmethod
     def check_manifest(manifest: dict, root: Path, models) -> None:
         if manifest["model_card_sha256"] != models.card_hash:
+            archive = manifest.get("archive") or "ARCHIVE_DIR"
             raise TrawlError(f"the index at {root} was made with another model "
-                             f"(card {manifest['model_card_sha256'][:12]}, installed {models.card_hash[:12]}); "
-                             "search it with that model or index into a new folder")
+                             f"(card {manifest['model_card_sha256'][:12]}, installed {models.card_hash[:12]}): "
+                             f"re-index it with `trawl index {archive} --index {root} --reindex` "
+                             "(spelling rules and learned rules carry over; calibrate again afterwards)")
 
     def set_archive(self, archive: Path) -> None:
         """Remember where the archive was (for listening clips); paths inside stay relative."""
@@ -592,6 +594,9 @@ class Index:
 
     # --------------------------------------------------------------- settings files
     SETTINGS = ("calibration.json", "rules.txt", "query_map.json", "learned_rules.json")
+    # what carries over to an index of the same archive made with another model: the textual rules;
+    # a calibration and a query map describe the old model's scores and vectors, so they are refitted
+    PORTABLE_SETTINGS = ("rules.txt", "learned_rules.json")
 
     @contextmanager
     def settings_change(self, wait: bool = False):

@@ -11,7 +11,7 @@ import numpy as np
 from . import TrawlError, audio
 from .features import HOP_SECONDS, SAMPLE_RATE, log_mel
 from .gating import speech_mask, speech_regions
-from .index_store import CatalogueDamaged, Index, file_lock, sha256_file
+from .index_store import CatalogueDamaged, Index, atomic_write, file_lock, sha256_file
 from .letters import letter_logprobs, quantise
 from .models import Models, load
 from .pooling import pool, prefix_sums
@@ -243,3 +243,25 @@ def remove_from_index(index_dir: Path, paths: list[str], restore: bool = False, 
             return list(paths)
         finally:
             idx.close()
+
+
+def carry_settings(previous: Path, index: Path) -> list[str]:
+    """Copy the settings that survive a change of model (Index.PORTABLE_SETTINGS) from an index
+    being replaced into its successor, then delete the replaced one. Returns what was carried."""
+    import shutil
+
+    from .index_store import Index
+
+    new = Index.open(index, write=True)
+    carried = []
+    try:
+        with new.settings_change():
+            for name in Index.PORTABLE_SETTINGS:
+                src = Path(previous) / name
+                if src.exists():
+                    atomic_write(new.root / name, src.read_bytes())
+                    carried.append(name)
+    finally:
+        new.close()
+    shutil.rmtree(previous)
+    return carried

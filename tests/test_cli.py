@@ -142,3 +142,27 @@ def test_an_odd_columns_variable_does_not_break_the_command(monkeypatch, value, 
 
     monkeypatch.setenv("COLUMNS", value)
     assert _piped_width() == width
+
+
+def test_index_of_another_model_names_the_reindex_command_and_reindex_keeps_rules(joined_broadcast, tmp_path):
+    """../shared/CONTRACTS.md, "Models and indexes": an index made with another model is refused in one
+    line naming the command that re-indexes it; rules and learned rules carry over, a calibration is refitted."""
+    folder, _, _ = joined_broadcast
+    idx = tmp_path / "idx"
+    assert run("index", folder, "--index", idx)[0] == 0
+    rules = tmp_path / "mine.rules"
+    rules.write_text("ph -> f\n", encoding="utf-8")
+    assert run("rules", "set", "--index", idx, rules)[0] == 0
+    (idx / "calibration.json").write_text("{}", encoding="utf-8")  # stands for the old model's calibration
+    man = json.loads((idx / "trawl-index.json").read_text())
+    man["model_card_sha256"] = "e" * 64  # as an index made with an earlier model
+    (idx / "trawl-index.json").write_text(json.dumps(man))
+    code, text = run("search", "--index", idx, "mbote")
+    assert code == 1 and "another model" in text and "--reindex" in text
+    assert len([line for line in text.strip().splitlines() if line.strip()]) == 1
+    code, text = run("index", folder, "--index", idx, "--reindex")
+    assert code == 0, text
+    assert (idx / "rules.txt").read_text(encoding="utf-8") == "ph -> f\n"
+    assert not (idx / "calibration.json").exists() and not (tmp_path / "idx.previous-model").exists()
+    code, text = run("search", "--index", idx, "--json", "mbote")
+    assert code == 0, text
