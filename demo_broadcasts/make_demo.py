@@ -24,7 +24,7 @@ from pathlib import Path
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
-LEXICON_FILE = HERE / "lexicon.txt"
+LEXICON_FILE = HERE / "vocabulary.txt"
 CORPUS_WORDS = HERE.parent.parent / "shared" / "corpora" / "mboshi" / "words.tsv"
 LEXICON_SEED = 20240611
 AUDIO_SEED = 77031
@@ -178,20 +178,20 @@ def lexicon_words(lex: dict[str, list[str]]) -> list[str]:
 
 
 def ensure_lexicon(corpus_words: set[str], allow_create: bool) -> dict[str, list[str]]:
-    """Build the lexicon, compare with lexicon.txt (write it if absent), and
+    """Build the lexicon, compare with vocabulary.txt (write it if absent), and
     abort if any word occurs in the training corpus."""
     lex = build_lexicon(corpus_words)
     words = lexicon_words(lex)
     if LEXICON_FILE.exists():
         on_disk = [l.strip() for l in LEXICON_FILE.read_text(encoding="utf-8").splitlines() if l.strip()]
         if on_disk != words:
-            sys.exit("lexicon.txt differs from the seeded generator; the lexicon is frozen "
-                     "(the training generator excludes it), so restore lexicon.txt or the generator.")
+            sys.exit("vocabulary.txt differs from the seeded generator; the lexicon is frozen "
+                     "(the training generator excludes it), so restore vocabulary.txt or the generator.")
     elif allow_create:
         LEXICON_FILE.write_text("\n".join(words) + "\n", encoding="utf-8")
         print(f"wrote {LEXICON_FILE} ({len(words)} words)")
     else:
-        sys.exit("lexicon.txt is missing")
+        sys.exit("vocabulary.txt is missing")
     clash = sorted(w for w in words if strip_marks(w) in corpus_words)
     if clash:
         sys.exit(f"lexicon words found in the training corpus: {clash}")
@@ -862,15 +862,15 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", type=Path, default=HERE,
                     help="where to write the broadcasts and tables (default: beside this script)")
-    ap.add_argument("--new-lexicon", action="store_true",
-                    help="write lexicon.txt if it is missing (it is frozen once written)")
+    ap.add_argument("--new-vocabulary", action="store_true",
+                    help="write vocabulary.txt if it is missing (it is frozen once written)")
     ap.add_argument("--corpus-words", type=Path, default=CORPUS_WORDS)
     args = ap.parse_args()
 
     if not args.corpus_words.exists():
         sys.exit(f"training corpus word list not found: {args.corpus_words}")
     corpus = load_corpus_words(args.corpus_words)
-    lex = ensure_lexicon(corpus, args.new_lexicon)
+    lex = ensure_lexicon(corpus, args.new_vocabulary)
     print(f"lexicon: {len(lexicon_words(lex))} words, none in the {len(corpus)} corpus word types")
 
     settings = voice_settings()

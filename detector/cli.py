@@ -216,16 +216,36 @@ def _parse_span(text: str, what: str) -> tuple[str, float, float]:
         raise TrawlError(f"{what}: {span!r} is not START-END in seconds") from None
 
 
-def hits_table(hits, calibrated: bool, title: str) -> Table:
+def _short_time(seconds: float) -> str:
+    """H:MM:SS.s (the compact table's times; the CSV keeps milliseconds)."""
+    tenths = int(round(seconds * 10))
+    h, rest = divmod(tenths, 36000)
+    m, rest = divmod(rest, 600)
+    return f"{h}:{m:02d}:{rest // 10:02d}.{rest % 10}"
+
+
+def hits_table(hits, calibrated: bool, title: str, width: int | None = None) -> Table:
+    """The hits as a table; below 110 columns a compact layout (one time column, the spelling
+    searched only where it differs from the term) keeps broadcast paths whole."""
     from .export import format_hms
 
+    narrow = (width if width is not None else out.width) < 110
     t = Table(title=title)
-    for col in ["term", "searched", "rank", "broadcast", "start", "end", "score", "confidence"] + (["accepted"] if calibrated else []):
-        t.add_column(col, justify="right" if col in ("rank", "score", "confidence") else "left",
-                     overflow="fold", no_wrap=col in ("start", "end", "rank", "score"),
-                     min_width=12 if col in ("start", "end") else None)
+    if narrow:
+        cols = ["term", "#", "broadcast", "time", "conf."] + (["ok"] if calibrated else [])
+    else:
+        cols = ["term", "searched", "rank", "broadcast", "start", "end", "score", "confidence"] + (["accepted"] if calibrated else [])
+    for col in cols:
+        t.add_column(col, justify="right" if col in ("rank", "#", "score", "confidence", "conf.") else "left",
+                     overflow="fold", no_wrap=col in ("start", "end", "rank", "#", "score", "time", "conf.", "ok"),
+                     min_width=12 if col in ("start", "end") else None, ratio=3 if col == "broadcast" and narrow else None)
     for h in hits:
-        row = [h.term, h.extra.get("searched", ""), str(h.rank), h.broadcast, format_hms(h.start), format_hms(h.end), f"{h.score:.2f}", f"{h.confidence:.2f}"]
+        searched = h.extra.get("searched", "")
+        if narrow:
+            term = h.term if not searched or searched == h.term else f"{h.term} ({searched})"
+            row = [term, str(h.rank), h.broadcast, f"{_short_time(h.start)}-{_short_time(h.end)}", f"{h.confidence:.2f}"]
+        else:
+            row = [h.term, searched, str(h.rank), h.broadcast, format_hms(h.start), format_hms(h.end), f"{h.score:.2f}", f"{h.confidence:.2f}"]
         if calibrated:
             row.append("yes" if h.accepted else "no")
         t.add_row(*row)

@@ -80,3 +80,23 @@ def test_rules_try_shows_both_stages_and_unknown_signs(check_archive, tmp_path):
     assert "warning:" in text
     code, text = run("rules", "try", "chako")
     assert code == 1 and "give a rules file" in text
+
+
+def test_hits_table_keeps_broadcast_paths_whole_at_80_columns():
+    """At 80 columns the compact layout prints each broadcast path on one line (hand-made hits;
+    times hand-worked: 3723.46 s is 1 h 2 min 3.5 s to the tenth)."""
+    import io
+
+    from rich.console import Console
+
+    from detector.cli import hits_table
+    from detector.hits import Hit
+
+    path = "news/morning-bulletin-01.opus"
+    hits = [Hit("kalimboro", path, 3723.46, 3724.0, -1.0, 0.91, rank=1), Hit("sanu", "phone-in/open-line-02.opus", 5.0, 5.5, -2.0, 0.4, rank=1)]
+    buf = io.StringIO()
+    Console(file=buf, width=80).print(hits_table(hits, calibrated=False, title="hits", width=80))
+    text = buf.getvalue()
+    assert max(len(line) for line in text.splitlines()) <= 80
+    assert path in text and "phone-in/open-line-02.opus" in text
+    assert "1:02:03.5-1:02:04.0" in text

@@ -38,7 +38,7 @@ def test_no_demo_word_occurs_in_the_training_corpus(corpus):
 
     corpus_words = {plain(line.split("\t")[-1]) for words in sorted(corpus.parent.glob("*/words.tsv"))
                     for line in words.read_text(encoding="utf-8").splitlines()[1:]}  # every shared corpus trains now
-    demo_words = {plain(w) for w in (DEMO_DIR / "lexicon.txt").read_text(encoding="utf-8").split()}
+    demo_words = {plain(w) for w in (DEMO_DIR / "vocabulary.txt").read_text(encoding="utf-8").split()}
     assert demo_words and not demo_words & corpus_words
 
 
@@ -53,4 +53,4 @@ def test_synthetic_training_words_skip_excluded_words():
     again = pseudo_words("es", 200, np.random.default_rng(5), banned)
     assert not {plain(w) for w in again} & banned
     root = DEMO_DIR.parent
-    assert {plain(w) for w in (DEMO_DIR / "lexicon.txt").read_text(encoding="utf-8").split()} <= excluded_words(root)
+    assert {plain(w) for w in (DEMO_DIR / "vocabulary.txt").read_text(encoding="utf-8").split()} <= excluded_words(root)
