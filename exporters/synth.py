@@ -5,7 +5,7 @@ vowel spellings, digraphs included) and spoken by espeak-ng with that
 language's spelling rules, in several voice variants, rates and pitches. The
 spelling encoder thus meets more than one orthography's letter-to-sound habits.
 
-Words of the demo's lexicon (demo_broadcasts/lexicon.txt) and of the real
+Words of the demo's lexicon (demo_broadcasts/vocabulary.txt) and of the real
 corpus are never generated, so the demo stays unseen.
 """
 
@@ -72,7 +72,7 @@ def plain(word: str) -> str:
 
 def excluded_words(root: Path) -> set[str]:
     """Words never to generate: the demo lexicon and every shared corpus's words (marks removed)."""
-    lexicon = root / "demo_broadcasts" / "lexicon.txt"
+    lexicon = root / "demo_broadcasts" / "vocabulary.txt"
     if not lexicon.exists():
         raise SystemExit(f"{lexicon} is missing: the demo's words must be known before synthesis")
     out = {plain(w) for w in lexicon.read_text(encoding="utf-8").split()}
