@@ -5,7 +5,7 @@
     spans = api.embed_spans(samples, 44100, [(1.20, 1.75)])         # (n, d), unit rows
     logp = api.letter_posteriors(samples, 44100)                    # (frames, 1 + letters), 20 ms frames
 
-A span's vector uses the audio from CONTEXT_SECONDS before it to CONTEXT_SECONDS after
+A span's vector uses the audio from context_seconds() before it to context_seconds() after
 it and nothing beyond, so the same span gives the same vector in a short excerpt and in a
 whole broadcast (given that much audio around it in both).
 """
@@ -20,7 +20,14 @@ from .models import load
 from .pooling import FRAME_SECONDS, pool, prefix_sums, to_frames
 from .spelling import letters, symbols
 
-CONTEXT_SECONDS = 1.0  # audio used on either side of a span (the contract allows up to 2 s)
+CONTEXT_SECONDS = 1.0  # audio used on either side of a span, at least (the contract allows up to 2 s)
+MAX_CONTEXT_SECONDS = 2.0
+
+
+def context_seconds(models) -> float:
+    """Audio taken either side of a span: CONTEXT_SECONDS, or the frame encoder's whole
+    receptive field where that is wider (a model with a sliding mean sees further), at most 2 s."""
+    return min(MAX_CONTEXT_SECONDS, max(CONTEXT_SECONDS, (models.context_frames + 2) * FRAME_SECONDS))
 
 
 def embed_spellings(words: list[str], models_dir: str | None = None) -> np.ndarray:
@@ -66,7 +73,7 @@ def embed_spans(samples: np.ndarray, sample_rate: int, spans: list[tuple[float, 
     arr = _check_spans(spans, len(x) / SAMPLE_RATE)
     m = load(models_dir)
     out = np.empty((len(arr), m.dim), np.float32)
-    c = int(round(CONTEXT_SECONDS * SAMPLE_RATE))
+    c = int(round(context_seconds(m) * SAMPLE_RATE))
     for i, (s, e) in enumerate(arr):
         s_i, e_i = int(round(s * SAMPLE_RATE)), int(round(e * SAMPLE_RATE))
         lo, hi = max(0, s_i - c), min(len(x), e_i + c)

@@ -24,6 +24,7 @@ FEATURE_PARAMS = {
     "log_floor": 1e-6,
     "log": "natural",
     "center": "zero-padded by win_length/2 at both ends of the signal",
+    # inside the model files, so each card describes its own (exporters/export_onnx.py); not compared
     "normalisation": "fixed per-band mean/std from training data, applied inside the frame encoder",
 }
 

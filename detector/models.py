@@ -30,7 +30,9 @@ def models_dir() -> Path:
 def check_card(card: dict) -> None:
     """Raise TrawlError when the card's feature settings differ from this program's."""
     theirs = card.get("features", {})
-    diffs = [f"{k}: card {theirs.get(k)!r}, program {v!r}" for k, v in FEATURE_PARAMS.items() if theirs.get(k) != v]
+    # "normalisation" happens inside the model files, so it is the card's own description, not compared
+    diffs = [f"{k}: card {theirs.get(k)!r}, program {v!r}" for k, v in FEATURE_PARAMS.items()
+             if k != "normalisation" and theirs.get(k) != v]
     if card.get("frame_seconds") != FRAME_SECONDS:
         diffs.append(f"frame_seconds: card {card.get('frame_seconds')!r}, program {FRAME_SECONDS!r}")
     if diffs:

@@ -16,6 +16,9 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from detector.features import FEATURE_PARAMS  # noqa: E402
+
+NORMALISATION = ("per-band sliding mean over ±0.75 s removed (exporters/model.py, sliding_mean_removed), then fixed "
+                 "per-band mean/std from training data; inside the frame encoder and the letter head")
 from detector.pooling import FRAME_SECONDS  # noqa: E402
 
 OPSET = 17
@@ -69,7 +72,7 @@ def export(model, inventory: list[str], out: Path, training: dict) -> dict:
         "name": "trawl-awe",
         "format_version": 1,
         "created": date.today().isoformat(),
-        "features": FEATURE_PARAMS,
+        "features": {**FEATURE_PARAMS, "normalisation": NORMALISATION},
         "frame_seconds": FRAME_SECONDS,
         "receptive_frames": fe.receptive_frames,
         "frame_dim": frame_dim,

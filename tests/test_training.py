@@ -199,3 +199,42 @@ def test_sliding_mean_cancels_a_fixed_channel_colouring():
     mask[0, :400] = 1
     padded = torch.cat([x, torch.full((1, 100, 40), -13.8)], 1)
     np.testing.assert_allclose(sliding_mean_removed(padded, mask)[0, :400].numpy(), sliding_mean_removed(x)[0].numpy(), atol=1e-4)
+
+
+@pytest.mark.slow
+def test_a_model_with_the_sliding_mean_keeps_the_bounded_context_contract(quick):
+    """../shared/CONTRACTS.md, "Embeddings and evaluation": the same span gives the same vector
+    (within 1e-4) in a short file and inside a much longer recording, using at most 2 s either side."""
+    from detector import api
+    from detector.models import Models
+
+    _, out = quick
+    m = Models(out)
+    assert m.context_frames * 0.02 <= api.MAX_CONTEXT_SECONDS
+    assert api.context_seconds(m) >= m.context_frames * 0.02  # the whole receptive field is taken
+    rng = np.random.default_rng(3)
+    short = (rng.standard_normal(16000 * 8) * 0.05).astype(np.float32)
+    long = np.concatenate([(rng.standard_normal(16000 * 30) * 0.3).astype(np.float32), short,
+                           (rng.standard_normal(16000 * 30) * 0.01).astype(np.float32)])
+    span = (3.0, 3.6)
+    a = api.embed_spans(short, 16000, [span], models_dir=str(out))
+    b = api.embed_spans(long, 16000, [(span[0] + 30, span[1] + 30)], models_dir=str(out))
+    np.testing.assert_allclose(a, b, atol=1e-4)
+
+
+def test_runtime_reads_each_cards_own_normalisation_but_refuses_other_features():
+    """The sliding mean lives inside the model files: a card describing it loads; a card with other
+    feature settings (here 80 mel bands) is refused in one line."""
+    import copy
+    import json
+
+    from detector import TrawlError
+    from detector.models import check_card, models_dir
+
+    card = json.loads((models_dir() / "card.json").read_text(encoding="utf-8"))
+    other = copy.deepcopy(card)
+    other["features"]["normalisation"] = "per-band sliding mean over ±0.75 s removed"
+    check_card(other)
+    other["features"]["n_mels"] = 80
+    with pytest.raises(TrawlError, match="n_mels"):
+        check_card(other)
