@@ -823,6 +823,7 @@ def check_cmd(
     err.print(f"stopped: {sum(x is not None for x in v)} of {len(v)} hits checked "
               f"({sum(x is True for x in v)} yes, {sum(x is False for x in v)} no), all saved in {sample}",
               highlight=False, soft_wrap=True)
+    raise typer.Exit(130)  # ../shared/CONTRACTS.md, exit codes: 130 interrupted (nothing is lost)
 
 
 # ----------------------------------------------------------------- help text

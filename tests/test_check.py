@@ -309,7 +309,7 @@ def test_the_command_prints_the_address_first_serves_and_stops_on_ctrl_c(check_a
     finally:
         proc.send_signal(signal.SIGINT)  # Ctrl-C
         out, err = proc.communicate(timeout=20)
-    assert proc.returncode == 0, err
+    assert proc.returncode == 130, err  # ../shared/CONTRACTS.md, "Exit codes": 130 interrupted
     assert "stopped: 0 of 5 hits checked" in err and "Traceback" not in err
 
 

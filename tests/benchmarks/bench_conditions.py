@@ -162,7 +162,7 @@ def search_condition(name, utts, channel, args, sources, train_types) -> dict:
     from detector.search import Searcher
     from exporters import broadcasts as builder
 
-    work = ROOT / "runs" / "bench_conditions" / args.split / name.replace(" ", "-")
+    work = ROOT / "runs" / "bench_conditions" / args.models_hash[:12] / args.split / name.replace(" ", "-")
     shutil.rmtree(work, ignore_errors=True)
     held = {"held": lambda x, rng: augment.radio_chain(x, rng, **sources["held"])[0],
             "codec2": lambda x, rng: augment.codec2(x)}.get(channel)
@@ -195,6 +195,7 @@ def main(argv=None) -> dict:
     if not CORPORA.exists():
         raise SystemExit(f"{CORPORA} is missing: this benchmark needs the shared corpora")
     models = load_models()
+    args.models_hash = models.card_hash
     sources = {"held": augment_sources("held"), "train": augment_sources("train")}
     results = []
     print(f"models: {models.dir} (card {models.card_hash[:12]}); split: {args.split}")
