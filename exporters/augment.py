@@ -74,6 +74,20 @@ def babble_sources(corpus: Path, limit: int = 60) -> list[np.ndarray]:
     return out
 
 
+SHARED_CORPORA = Path(__file__).resolve().parents[2] / "shared" / "corpora"
+_SOURCES: dict[str, dict] = {}
+
+
+def channel_sources(pool: str, cache: Path | None = None) -> dict:
+    """radio_chain's keyword arguments for one pool: the pool's real music and, for the held-out
+    channel, the real babble (when ../shared is present); loaded once per process."""
+    if pool not in _SOURCES:
+        babble = SHARED_CORPORA / "urdu-broadcast"
+        noise = babble_sources(babble) if pool == "held" and babble.exists() else None
+        _SOURCES[pool] = {"music": music_sources(pool, cache), "noise": noise, "pool": pool}
+    return _SOURCES[pool]
+
+
 def loop_to(src: np.ndarray, n: int, rng: np.random.Generator) -> np.ndarray:
     """`n` samples of a source, from a random start, looped as needed."""
     start = int(rng.integers(0, max(1, len(src))))

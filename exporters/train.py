@@ -52,25 +52,12 @@ MARGIN, MARGIN_EDITS, TAU = 0.2, 4, 0.1
 
 # ---------------------------------------------------------------- data
 
-_SOURCES: dict[str, list] = {}
-
-
-def channel_sources(pool: str) -> dict:
-    """Real music (and, for the held-out channel, real babble) for radio_chain, loaded once per process."""
-    if pool not in _SOURCES:
-        music = augment.music_sources(pool, cache=ROOT / "runs" / "music")
-        babble = ROOT.parent / "shared" / "corpora" / "urdu-broadcast"
-        noise = augment.babble_sources(babble) if pool == "held" and babble.exists() else None
-        _SOURCES[pool] = {"music": music, "noise": noise, "pool": pool}
-    return _SOURCES[pool]
-
-
 def make_item(u: Utterance, variant: int, seed: int, pool: str = "train") -> dict:
     """Features of one utterance: variant 0 clean, any other through a random archive channel."""
     x = load_audio(u)
     f, lead = 1.0, 0.0
     if variant > 0:
-        x, f, lead = augment.radio_chain(x, np.random.default_rng(seed), **channel_sources(pool))
+        x, f, lead = augment.radio_chain(x, np.random.default_rng(seed), **augment.channel_sources(pool, ROOT / "runs" / "music"))
     feats = log_mel(x)
     words = [(lead + s / f, lead + e / f, w) for s, e, w in u.words]
     return {"id": u.id, "speaker": u.speaker, "lang": u.lang, "feats": feats.astype(np.float16),

@@ -27,7 +27,9 @@ beta 999.9, T = all audio searched) and P@10 as bench_search.py computes them. T
 channel's broadcasts pass through the held-back channel whole.
 
 --split dev measures on the dev speakers and sentences instead (model selection uses those).
-Prints a table and, last, one JSON line.
+Prints a table and, last, one JSON line. --write-card puts the table into the model card in use
+(MODEL_CARD.md between <!-- conditions:start --> and <!-- conditions:end -->); --from-log LOG
+writes the table of an earlier run (the last JSON line this script printed) instead of measuring.
 """
 
 from __future__ import annotations
@@ -179,6 +181,35 @@ def search_condition(name, utts, channel, args, sources, train_types) -> dict:
             "mtwv": r["mtwv"], "p_at_10": r["p_at_10"], "occurrences": r["occurrences"]}
 
 
+START, END = "<!-- conditions:start -->", "<!-- conditions:end -->"
+
+
+def card_section(out: dict) -> str:
+    rows = ["| condition | tokens / types / speakers | acoustic AP | cross-view AP | DTW AP (emb. on the same tokens) "
+            "| letter error | MTWV |", "|---|---|---:|---:|---|---:|---:|"]
+    for r in out["results"]:
+        rows.append(f"| {r['condition']} | {r['tokens']} / {r.get('types', 0)} / {r.get('speakers', 0)} | "
+                    f"{fmt(r.get('acoustic_ap'))} | {fmt(r.get('crossview_ap'))} | {fmt(r.get('dtw_ap'))} "
+                    f"({fmt(r.get('embedding_ap_on_dtw_tokens'))}) | {fmt(r.get('letter_error'))} | {fmt(r.get('mtwv'))} |")
+    return "\n".join([START, "## Seen and unseen speakers, language and channel", "",
+                      f"`{out['command'].strip()}` (split: {out['split']}; tests/benchmarks/bench_conditions.py says "
+                      "what each condition is):", ""] + rows + [END])
+
+
+def write_card(out: dict, directory: Path) -> None:
+    import re
+
+    md = directory / "MODEL_CARD.md"
+    text = md.read_text(encoding="utf-8") if md.exists() else ""
+    section = card_section(out)
+    if START in text:
+        text = re.sub(re.escape(START) + ".*?" + re.escape(END), lambda _: section, text, flags=re.S)
+    else:
+        text = text.rstrip("\n") + "\n\n" + section + "\n"
+    md.write_text(text, encoding="utf-8")
+    print(f"wrote the conditions table into {md}")
+
+
 def fmt(v, digits=3):
     return "-" if v is None else f"{v:.{digits}f}"
 
@@ -191,12 +222,20 @@ def main(argv=None) -> dict:
     ap.add_argument("--split", choices=["held", "dev"], default="held")
     ap.add_argument("--only", nargs="*", default=None, help="condition names to run")
     ap.add_argument("--search-minutes", type=float, default=6.0, help="minutes of speech searched per condition (0: none)")
+    ap.add_argument("--write-card", action="store_true", help="put the table into the model card in use")
+    ap.add_argument("--from-log", type=Path, default=None, help="with --write-card: an earlier run's output")
     args = ap.parse_args(argv)
+    if args.from_log is not None:
+        from detector.models import models_dir
+
+        out = json.loads(args.from_log.read_text(encoding="utf-8").strip().splitlines()[-1])
+        write_card(out, models_dir())
+        return out
     if not CORPORA.exists():
         raise SystemExit(f"{CORPORA} is missing: this benchmark needs the shared corpora")
     models = load_models()
     args.models_hash = models.card_hash
-    sources = {"held": augment_sources("held"), "train": augment_sources("train")}
+    sources = {pool: augment.channel_sources(pool, ROOT / "runs" / "music") for pool in ("held", "train")}
     results = []
     print(f"models: {models.dir} (card {models.card_hash[:12]}); split: {args.split}")
     print(f"{'condition':18} {'tokens':>6} {'types':>5} {'spk':>4} {'acoustic AP':>11} {'cross-view AP':>13} "
@@ -216,13 +255,9 @@ def main(argv=None) -> dict:
     out = {"benchmark": "conditions", "split": args.split, "model_card": models.card_hash, "results": results,
            "command": "python tests/benchmarks/bench_conditions.py " + " ".join(argv if argv is not None else sys.argv[1:])}
     print(json.dumps(out))
+    if args.write_card:
+        write_card(out, models.dir)
     return out
-
-
-def augment_sources(pool: str) -> dict:
-    from exporters.train import channel_sources
-
-    return channel_sources(pool)
 
 
 if __name__ == "__main__":
